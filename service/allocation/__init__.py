@@ -1,0 +1,64 @@
+"""Allocation: a member's preference, a solved risky mix and the plan's policy make a recommendation.
+
+Imports numerics below it; knows nothing of HTTP or databases.
+"""
+
+from .disclosures import DISCLOSURES, disclosures_for
+from .errors import AllocationError
+from .line import AllocationLine
+from .mixes import (
+    MixView,
+    canonical_inputs,
+    content_hash,
+    frontier_document,
+    is_finite_document,
+    published_document,
+    solve,
+)
+from .money import format_units, minor_exponent, parse_amount, split_units
+from .policy import Policy, build_policy, check_rates
+from .preferences import (
+    FractionChoice,
+    LossTolerance,
+    Preference,
+    RiskAversion,
+    RiskScore,
+    TargetVolatility,
+    choose_risky_fraction,
+)
+from .recommendation import Account, account_from_request, line_for, recommend
+from .routing import ContributionSplit, route_contribution
+
+__all__ = [
+    "DISCLOSURES",
+    "Account",
+    "AllocationError",
+    "AllocationLine",
+    "ContributionSplit",
+    "FractionChoice",
+    "LossTolerance",
+    "MixView",
+    "Policy",
+    "Preference",
+    "RiskAversion",
+    "RiskScore",
+    "TargetVolatility",
+    "account_from_request",
+    "build_policy",
+    "canonical_inputs",
+    "check_rates",
+    "choose_risky_fraction",
+    "content_hash",
+    "disclosures_for",
+    "format_units",
+    "frontier_document",
+    "is_finite_document",
+    "line_for",
+    "minor_exponent",
+    "parse_amount",
+    "published_document",
+    "recommend",
+    "route_contribution",
+    "solve",
+    "split_units",
+]

@@ -1,0 +1,182 @@
+"""Risky-mix versions: their canonical form and content hash, solving once, and the published view.
+
+A mix is identified by the SHA-256 of a canonical JSON form of its inputs, so the same content
+always hashes the same whatever key order or number spelling a caller used; the solved result is
+kept beside it and rebuilt from its document, never re-solved.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import orjson
+
+from service.numerics import Frontier, MixInputs, Portfolio, SolvedMix, build_inputs, solve_mix
+
+# Version of the canonical form below; part of the hash so a future change cannot collide.
+CANONICAL_FORM = "mixline.mix.v1"
+
+
+def canonical_inputs(
+    *,
+    assets: Sequence[Mapping[str, Any]],
+    risk_free_rate: float,
+    correlation: Sequence[Sequence[float]] | None,
+    covariance: Sequence[Sequence[float]] | None,
+    bounds: Mapping[str, Sequence[float]] | None,
+    long_only: bool,
+) -> dict[str, Any]:
+    """Everything that determines the solution, in one canonical shape (cross_check is not in it)."""
+    return {
+        "form": CANONICAL_FORM,
+        "assets": [
+            {
+                "code": a["code"],
+                "expected_return": float(a["expected_return"]),
+                "volatility": None if a.get("volatility") is None else float(a["volatility"]),
+            }
+            for a in assets
+        ],
+        "risk_free_rate": float(risk_free_rate),
+        "correlation": None if correlation is None else [[float(x) for x in row] for row in correlation],
+        "covariance": None if covariance is None else [[float(x) for x in row] for row in covariance],
+        "bounds": None
+        if not bounds
+        else {code: [float(lo), float(hi)] for code, (lo, hi) in sorted(bounds.items())},
+        "long_only": bool(long_only),
+    }
+
+
+def content_hash(canonical: Mapping[str, Any]) -> str:
+    # orjson writes floats in shortest round-trip form and sorted keys make the text unique.
+    return hashlib.sha256(orjson.dumps(canonical, option=orjson.OPT_SORT_KEYS)).hexdigest()
+
+
+def inputs_from_canonical(canonical: Mapping[str, Any], *, max_condition_number: float) -> MixInputs:
+    assets = canonical["assets"]
+    vols = [a["volatility"] for a in assets]
+    bounds = canonical["bounds"]
+    return build_inputs(
+        [a["code"] for a in assets],
+        [a["expected_return"] for a in assets],
+        canonical["risk_free_rate"],
+        volatilities=None if all(v is None for v in vols) else vols,
+        correlation=canonical["correlation"],
+        covariance=canonical["covariance"],
+        bounds=None if bounds is None else {k: (v[0], v[1]) for k, v in bounds.items()},
+        long_only=canonical["long_only"],
+        max_condition_number=max_condition_number,
+    )
+
+
+def solve(canonical: Mapping[str, Any], *, cross_check: bool, max_condition_number: float) -> SolvedMix:
+    return solve_mix(
+        inputs_from_canonical(canonical, max_condition_number=max_condition_number),
+        cross_check=cross_check,
+    )
+
+
+def _clean(x: float) -> float:
+    # -0.0 and 1e-17 noise in weights read as errors to people; exact zeros stay zeros.
+    return 0.0 if abs(x) < 1e-15 else float(x)
+
+
+def portfolio_document(p: Portfolio, codes: Sequence[str]) -> dict[str, Any]:
+    return {
+        "weights": {code: _clean(w) for code, w in zip(codes, p.weights, strict=True)},
+        "expected_return": p.expected_return,
+        "volatility": p.volatility,
+        "sharpe_ratio": p.sharpe_ratio,
+        "method": p.method,
+    }
+
+
+def published_document(version: str, digest: str, solved: SolvedMix) -> dict[str, Any]:
+    """The body a committee gets back at publish, and anyone gets from GET .../mixes/{version}."""
+    codes = solved.inputs.codes
+    return {
+        "version": version,
+        "content_hash": digest,
+        "risk_free_rate": solved.inputs.risk_free_rate,
+        "asset_codes": list(codes),
+        "tangency": portfolio_document(solved.tangency, codes),
+        "min_variance": portfolio_document(solved.min_variance, codes),
+        "kkt_residual": solved.kkt_residual,
+        "cross_checks": [
+            {
+                "method": c.method,
+                "sharpe_ratio": c.sharpe_ratio,
+                "max_weight_gap": c.max_weight_gap,
+                "sharpe_gap": c.sharpe_gap,
+                "seconds": c.seconds,
+            }
+            for c in solved.cross_checks
+        ],
+    }
+
+
+@dataclass(frozen=True)
+class MixView:
+    """What allocations need of one solved mix; built once per version and kept in memory."""
+
+    version: str
+    content_hash: str
+    codes: tuple[str, ...]
+    weights: np.ndarray
+    tangency_return: float
+    tangency_volatility: float
+    risk_free_rate: float
+    solved: SolvedMix
+
+    @classmethod
+    def from_solved(cls, version: str, digest: str, solved: SolvedMix) -> MixView:
+        return cls(
+            version=version,
+            content_hash=digest,
+            codes=solved.inputs.codes,
+            weights=solved.tangency.weights,
+            tangency_return=solved.tangency.expected_return,
+            tangency_volatility=solved.tangency.volatility,
+            risk_free_rate=solved.inputs.risk_free_rate,
+            solved=solved,
+        )
+
+
+def frontier_document(view: MixView, points: int) -> dict[str, Any]:
+    solved = view.solved
+    codes = view.codes
+    frontier: Frontier = solved.frontier
+    sharpe = view.solved.tangency.sharpe_ratio
+    return {
+        "version": view.version,
+        "content_hash": view.content_hash,
+        "points": [
+            {
+                "expected_return": p.expected_return,
+                "volatility": p.volatility,
+                "sharpe_ratio": p.sharpe_ratio,
+                "weights": {c: _clean(w) for c, w in zip(codes, p.weights, strict=True)},
+            }
+            for p in frontier.sample(points, solved.inputs)
+        ],
+        "tangency": portfolio_document(solved.tangency, codes),
+        "min_variance": portfolio_document(solved.min_variance, codes),
+        # E[r] = intercept + slope * sigma: the capital allocation line through rf and the tangency.
+        "allocation_line": {"intercept": view.risk_free_rate, "slope": sharpe},
+    }
+
+
+def is_finite_document(doc: Any) -> bool:
+    """True when no float anywhere in a document is NaN or infinite (never sent to a client)."""
+    if isinstance(doc, float):
+        return math.isfinite(doc)
+    if isinstance(doc, dict):
+        return all(is_finite_document(v) for v in doc.values())
+    if isinstance(doc, list | tuple):
+        return all(is_finite_document(v) for v in doc)
+    return True

@@ -1,0 +1,84 @@
+"""The rules of answering and logging allocations, between the HTTP routes and the layers below."""
+
+from __future__ import annotations
+
+import uuid
+from datetime import UTC, datetime
+from typing import Any
+
+import orjson
+
+from service.allocation import (
+    LossTolerance,
+    Preference,
+    RiskAversion,
+    RiskScore,
+    TargetVolatility,
+    account_from_request,
+    recommend,
+)
+from service.store import LogBatch
+
+from .schemas import AllocationIn, PreferenceIn
+from .state import AppState, PlanView
+
+
+def new_allocation_id() -> str:
+    return f"al_{uuid.uuid4().hex}"
+
+
+def utc_now_text() -> str:
+    return datetime.now(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
+
+
+def canonical_json(doc: Any) -> bytes:
+    return orjson.dumps(doc, option=orjson.OPT_SORT_KEYS)
+
+
+def preference_of(p: PreferenceIn) -> tuple[Preference, dict[str, float | int]]:
+    if p.risk_aversion is not None:
+        return RiskAversion(p.risk_aversion), {"risk_aversion": p.risk_aversion}
+    if p.target_volatility is not None:
+        return TargetVolatility(p.target_volatility), {"target_volatility": p.target_volatility}
+    if p.max_loss is not None:
+        assert p.confidence is not None
+        horizon = 1.0 if p.horizon_years is None else p.horizon_years
+        return (
+            LossTolerance(p.max_loss, p.confidence, horizon),
+            {"max_loss": p.max_loss, "confidence": p.confidence, "horizon_years": horizon},
+        )
+    assert p.risk_score is not None
+    return RiskScore(p.risk_score), {"risk_score": p.risk_score}
+
+
+def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: str) -> dict[str, Any]:
+    """The recommendation document for one member (not yet logged)."""
+    view = state.mixes.view(plan.plan_id, body.mix_version)
+    preference, preference_doc = preference_of(body.preference)
+    holdings = None if body.holdings is None else {"risky": body.holdings.risky, "safe": body.holdings.safe}
+    account = account_from_request(plan.currency, body.amount, holdings, body.contribution)
+    return recommend(
+        allocation_id=new_allocation_id(),
+        plan_id=plan.plan_id,
+        member_id=body.member_id,
+        created_at=created_at,
+        currency=plan.currency,
+        view=view,
+        policy=plan.policy,
+        preference=preference,
+        preference_document=preference_doc,
+        account=account,
+    )
+
+
+def log_batch(plan_id: str, mix_version: str, created_at: str, docs: list[dict[str, Any]]) -> tuple[LogBatch, list[bytes]]:
+    bodies = [canonical_json(d) for d in docs]
+    batch = LogBatch(
+        plan_id=plan_id,
+        mix_version=mix_version,
+        created_at=created_at,
+        allocation_ids=[d["allocation_id"] for d in docs],
+        member_ids=[d["member_id"] for d in docs],
+        bodies=[b.decode() for b in bodies],
+    )
+    return batch, bodies

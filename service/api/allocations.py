@@ -1,0 +1,70 @@
+"""Allocations (portal): answer one member, read one back, list a member's. HTTP only."""
+
+from __future__ import annotations
+
+import asyncio
+from typing import Annotated
+
+import orjson
+from fastapi import APIRouter, Query
+from starlette.responses import Response
+
+from service.store import get_allocation, list_allocations
+
+from .allocating import answer, log_batch, utc_now_text
+from .deps import CallerDep, StateDep
+from .errors import NotFound
+from .responses import AUTHED, problems, raw_json_response
+from .schemas import AllocationIn, AllocationListOut, AllocationOut
+
+router = APIRouter(prefix="/v1/plans/{plan_id}/allocations", tags=["allocations"])
+
+READERS = ("portal",)
+
+
+@router.post(
+    "", status_code=201, response_model=AllocationOut, operation_id="create_allocation",
+    responses=problems(*AUTHED, 409),
+)
+async def create_allocation(plan_id: str, body: AllocationIn, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, "portal")
+    plan = state.plan(plan_id)
+    created_at = utc_now_text()
+    doc = answer(state, plan, body, created_at=created_at)
+    batch, bodies = log_batch(plan_id, body.mix_version, created_at, [doc])
+    # The answer goes out only once its log row is committed: no unlogged recommendation exists.
+    await asyncio.wrap_future(state.db.writer.submit(batch))
+    state.metrics.allocations.labels(plan_id).inc()
+    return raw_json_response(bodies[0], 201, headers={"Location": f"/v1/plans/{plan_id}/allocations/{doc['allocation_id']}"})
+
+
+@router.get(
+    "/{allocation_id}", response_model=AllocationOut, operation_id="get_allocation",
+    responses=problems(*AUTHED),
+)
+def read_allocation(plan_id: str, allocation_id: str, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, *READERS)
+    with state.db.reading() as s:
+        body = get_allocation(s, plan_id, allocation_id)
+    if body is None:
+        raise NotFound(f"allocation {allocation_id!r} not found in plan {plan_id!r}")
+    return raw_json_response(body.encode())
+
+
+@router.get("", response_model=AllocationListOut, operation_id="list_allocations", responses=problems(*AUTHED))
+def list_member_allocations(
+    plan_id: str,
+    caller: CallerDep,
+    state: StateDep,
+    member_id: Annotated[str, Query(min_length=1, max_length=128)],
+    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
+) -> Response:
+    caller.require(plan_id, *READERS)
+    state.plan(plan_id)
+    with state.db.reading() as s:
+        bodies = list_allocations(s, plan_id, member_id, limit=limit)
+    # Stored bodies are spliced in as they are: what the member got is what is shown.
+    head = orjson.dumps({"plan_id": plan_id, "member_id": member_id, "count": len(bodies)})
+    payload = head[:-1] + b',"allocations":[' + ",".join(bodies).encode() + b"]}"
+    return raw_json_response(payload)
+

@@ -1,0 +1,33 @@
+"""Dependency aliases, so that routes read like their signature."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import Depends, Request
+from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+
+from .auth import Caller
+from .state import AppState
+
+_bearer = HTTPBearer(auto_error=False, description="Bearer <secret> issued by POST /v1/plans/{plan_id}/keys")
+
+
+def get_state(request: Request) -> AppState:
+    state: AppState = request.app.state.mixline
+    return state
+
+
+StateDep = Annotated[AppState, Depends(get_state)]
+
+
+def current_caller(
+    request: Request,
+    state: StateDep,
+    _credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
+) -> Caller:
+    # The raw header is read again so that a malformed scheme gets our 401, not HTTPBearer's 403.
+    return state.keys.caller(request.headers.get("authorization"), state.load_key)
+
+
+CallerDep = Annotated[Caller, Depends(current_caller)]

@@ -1,0 +1,85 @@
+"""Risky-mix versions: publish (committee), activate, read, current, frontier. HTTP only."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Query
+from starlette.concurrency import run_in_threadpool
+from starlette.responses import Response
+
+from service.allocation import frontier_document
+from service.store import set_active_version
+
+from .deps import CallerDep, StateDep
+from .errors import NotFound, Unprocessable
+from .responses import AUTHED, json_response, problems
+from .schemas import ActivationOut, FrontierOut, MixIn, MixOut
+
+router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
+
+READERS = ("committee", "portal")
+
+
+@router.post(
+    "", status_code=201, response_model=MixOut, operation_id="publish_mix",
+    responses={200: {"description": "Same version and content again: the first answer"}, **problems(*AUTHED, 409, 413)},
+)
+async def publish_mix(plan_id: str, body: MixIn, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, "committee")
+    plan = state.plan(plan_id)
+    # Solving is CPU work: keep it off the event loop so other requests go on being answered.
+    created, doc = await run_in_threadpool(state.mixes.publish, plan, body)
+    return json_response(doc, 201 if created else 200)
+
+
+@router.get("/current", response_model=MixOut, operation_id="get_current_mix", responses=problems(*AUTHED))
+def current_mix(plan_id: str, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, *READERS)
+    version = state.active_version(plan_id)
+    if version is None:
+        raise NotFound(f"plan {plan_id!r} has no active mix yet; a committee activates one")
+    return json_response({**state.mixes.published(plan_id, version), "active": True})
+
+
+@router.get("/{version}", response_model=MixOut, operation_id="get_mix", responses=problems(*AUTHED))
+def read_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, *READERS)
+    state.plan(plan_id)
+    doc = state.mixes.published(plan_id, version)
+    return json_response({**doc, "active": state.active_version(plan_id) == version})
+
+
+@router.post(
+    "/{version}/activate", response_model=ActivationOut, operation_id="activate_mix",
+    responses=problems(*AUTHED),
+)
+def activate_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, "committee")
+    state.plan(plan_id)
+    view = state.mixes.view(plan_id, version)
+    with state.db.writing() as s:
+        set_active_version(s, plan_id, version)
+    return json_response({"plan_id": plan_id, "active_version": version, "content_hash": view.content_hash})
+
+
+@router.get(
+    "/{version}/frontier", response_model=FrontierOut, operation_id="get_frontier",
+    responses=problems(*AUTHED),
+)
+def read_frontier(
+    plan_id: str,
+    version: str,
+    caller: CallerDep,
+    state: StateDep,
+    points: Annotated[int, Query(ge=2, description="how many evenly spaced frontier points")] = 25,
+) -> Response:
+    caller.require(plan_id, *READERS)
+    state.plan(plan_id)
+    if points > state.settings.max_frontier_points:
+        raise Unprocessable(
+            f"points: at most {state.settings.max_frontier_points}",
+            errors=[{"field": "points", "reason": f"at most {state.settings.max_frontier_points}"}],
+        )
+    view = state.mixes.view(plan_id, version)
+    return json_response(frontier_document(view, points))

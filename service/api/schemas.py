@@ -1,0 +1,306 @@
+"""Request and response models of the HTTP contract (../shared/API.md field names).
+
+Requests are strict: no NaN or Infinity, no booleans or strings where numbers belong, no unknown
+fields. Money is a decimal string; a plain number is accepted too and parsed exactly.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Any, Literal
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    PlainValidator,
+    StringConstraints,
+    WithJsonSchema,
+    model_validator,
+)
+
+# Separates a sub-field from the reason in a model validator's message (see errors.validation_errors).
+FIELD_MARK = "\x1f"
+
+
+def at(field: str, reason: str) -> ValueError:
+    """A model-level validation error that names the field it is about."""
+    return ValueError(f"{field}{FIELD_MARK}{reason}")
+
+
+def _money(value: Any) -> str | int | float:
+    if isinstance(value, bool) or not isinstance(value, str | int | float):
+        raise ValueError('must be a decimal string such as "1250.00" or a number')
+    if isinstance(value, float) and not math.isfinite(value):
+        raise ValueError("must be a finite amount")
+    return value
+
+Code = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$")]
+Identifier = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")]
+MemberId = Annotated[str, StringConstraints(min_length=1, max_length=128, pattern=r"^[^\x00-\x1f]+$")]
+Money = Annotated[
+    str | int | float,
+    PlainValidator(_money),
+    WithJsonSchema({"anyOf": [{"type": "string"}, {"type": "number"}], "examples": ["1250.00"]}),
+    Field(description='decimal string such as "1250.00"; a number is accepted'),
+]
+Currency = Annotated[str, StringConstraints(pattern=r"^[A-Z]{3}$")]
+
+
+class Strict(BaseModel):
+    model_config = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False, frozen=True)
+
+
+class Problem(BaseModel):
+    """RFC 9457 problem details."""
+
+    type: str
+    title: str
+    status: int
+    detail: str
+    instance: str | None = None
+    errors: list[dict[str, str]] | None = None
+
+
+# ---- plans and keys -------------------------------------------------------------------------
+
+
+class PolicyIn(Strict):
+    max_risky_fraction: float = 1.0
+    min_risky_fraction: float = 0.0
+    borrowing_rate: float | None = None
+    risk_score_table: dict[str, float] | None = None
+
+
+class PlanIn(Strict):
+    plan_id: Identifier
+    name: Annotated[str, StringConstraints(min_length=1, max_length=200)]
+    currency: Currency
+    policy: PolicyIn = PolicyIn()
+
+
+class PlanOut(BaseModel):
+    plan_id: str
+    name: str
+    currency: str
+    policy: dict[str, object]
+    active_version: str | None
+    created_at: str
+
+
+class KeyIn(Strict):
+    role: Literal["committee", "portal"]
+
+
+class KeyOut(BaseModel):
+    key_id: str
+    plan_id: str
+    role: str
+    secret: str
+
+
+# ---- risky mixes ----------------------------------------------------------------------------
+
+
+# Annual decimals; the ranges only refuse typos (5 = 500 %) and keep arithmetic far from overflow.
+ExpectedReturn = Annotated[float, Field(ge=-1.0, le=5.0)]
+Volatility = Annotated[float, Field(gt=0.0, le=5.0)]
+Rate = Annotated[float, Field(gt=-1.0, lt=1.0)]
+MatrixEntry = Annotated[float, Field(ge=-25.0, le=25.0)]
+
+
+class AssetIn(Strict):
+    code: Code
+    expected_return: ExpectedReturn
+    volatility: Volatility | None = None
+
+
+Matrix = list[list[MatrixEntry]]
+
+
+class MixIn(Strict):
+    version: Identifier
+    assets: Annotated[list[AssetIn], Field(min_length=1)]
+    correlation: Matrix | None = None
+    covariance: Matrix | None = None
+    risk_free_rate: Rate
+    bounds: dict[str, Annotated[list[float], Field(min_length=2, max_length=2)]] | None = None
+    long_only: bool = True
+    cross_check: bool = True
+
+    @model_validator(mode="after")
+    def _one_matrix(self) -> MixIn:
+        if self.correlation is None and self.covariance is None:
+            raise at("covariance", "give exactly one of correlation (with volatilities) or covariance")
+        if self.correlation is not None and self.covariance is not None:
+            raise at("correlation", "give exactly one of correlation (with volatilities) or covariance")
+        if self.correlation is not None:
+            for i, a in enumerate(self.assets):
+                if a.volatility is None:
+                    raise at(f"assets[{i}].volatility", "required when a correlation matrix is given")
+        return self
+
+
+class PortfolioOut(BaseModel):
+    weights: dict[str, float]
+    expected_return: float
+    volatility: float
+    sharpe_ratio: float
+    method: str
+
+
+class CrossCheckOut(BaseModel):
+    method: str
+    sharpe_ratio: float
+    max_weight_gap: float
+    sharpe_gap: float
+    seconds: float
+
+
+class MixOut(BaseModel):
+    version: str
+    content_hash: str
+    risk_free_rate: float
+    asset_codes: list[str]
+    tangency: PortfolioOut
+    min_variance: PortfolioOut
+    kkt_residual: float
+    cross_checks: list[CrossCheckOut]
+    active: bool | None = None
+
+
+class ActivationOut(BaseModel):
+    plan_id: str
+    active_version: str
+    content_hash: str
+
+
+class FrontierPointOut(BaseModel):
+    expected_return: float
+    volatility: float
+    sharpe_ratio: float
+    weights: dict[str, float]
+
+
+class AllocationLineOut(BaseModel):
+    intercept: float
+    slope: float
+
+
+class FrontierOut(BaseModel):
+    version: str
+    content_hash: str
+    points: list[FrontierPointOut]
+    tangency: PortfolioOut
+    min_variance: PortfolioOut
+    allocation_line: AllocationLineOut
+
+
+# ---- allocations ----------------------------------------------------------------------------
+
+
+class PreferenceIn(Strict):
+    """Exactly one kind: risk_aversion | target_volatility | max_loss (+confidence) | risk_score."""
+
+    risk_aversion: float | None = None
+    target_volatility: float | None = None
+    max_loss: float | None = None
+    confidence: float | None = None
+    horizon_years: float | None = None
+    risk_score: int | None = None
+
+    @model_validator(mode="after")
+    def _exactly_one(self) -> PreferenceIn:
+        kinds = [
+            k
+            for k in ("risk_aversion", "target_volatility", "max_loss", "risk_score")
+            if getattr(self, k) is not None
+        ]
+        if not kinds:
+            raise ValueError(
+                "give exactly one of risk_aversion, target_volatility, max_loss (with confidence) "
+                "or risk_score"
+            )
+        if len(kinds) > 1:
+            raise ValueError(f"{' and '.join(kinds)} given together; give exactly one preference")
+        if kinds[0] == "max_loss":
+            if self.confidence is None:
+                raise at("confidence", "required with max_loss: a probability in (0.5, 1)")
+        else:
+            for extra in ("confidence", "horizon_years"):
+                if getattr(self, extra) is not None:
+                    raise at(extra, "belongs to a max_loss preference only")
+        return self
+
+
+class HoldingsIn(Strict):
+    risky: Money
+    safe: Money
+
+
+class AllocationIn(Strict):
+    member_id: MemberId
+    mix_version: Identifier
+    amount: Money | None = None
+    preference: PreferenceIn
+    holdings: HoldingsIn | None = None
+    contribution: Money | None = None
+
+
+class MoneySplitOut(BaseModel):
+    risky: str
+    safe: str
+
+
+class AllocationOut(BaseModel):
+    allocation_id: str
+    plan_id: str
+    member_id: str
+    mix_version: str
+    mix_content_hash: str
+    preference: dict[str, float | int]
+    risky_fraction: float
+    safe_fraction: float
+    unconstrained_risky_fraction: float | None
+    limited_by: str | None
+    currency: str
+    amount: str
+    amounts: MoneySplitOut
+    by_asset: dict[str, str]
+    expected_return: float
+    volatility: float
+    disclosures: list[str]
+    created_at: str
+    holdings: MoneySplitOut | None = None
+    contribution: str | None = None
+    contribution_split: MoneySplitOut | None = None
+    after_contribution: MoneySplitOut | None = None
+
+
+class AllocationListOut(BaseModel):
+    plan_id: str
+    member_id: str
+    count: int
+    allocations: list[AllocationOut]
+
+
+# ---- audit and operations -------------------------------------------------------------------
+
+
+class BadRowOut(BaseModel):
+    seq: int | None
+    allocation_id: str | None
+    reason: str
+
+
+class AuditOut(BaseModel):
+    plan_id: str
+    ok: bool
+    checked: int
+    head_hash: str
+    first_bad: BadRowOut | None
+
+
+class HealthOut(BaseModel):
+    status: str
+    checks: dict[str, str] | None = None

@@ -1,0 +1,193 @@
+"""What one process keeps between requests: settings, the database, and caches of immutable things.
+
+Plans (their name, currency and policy), keys and published mixes never change once written, so a
+replica may keep them for its lifetime; the active version can change, so it is always read live.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass
+from typing import Any
+
+from service.allocation import (
+    AllocationError,
+    MixView,
+    Policy,
+    canonical_inputs,
+    check_rates,
+    content_hash,
+    is_finite_document,
+    published_document,
+    solve,
+)
+from service.numerics import SolvedMix
+from service.settings import Settings
+from service.store import (
+    Conflict,
+    Database,
+    KeyRecord,
+    PlanRecord,
+    get_key,
+    get_mix,
+    get_plan,
+    insert_mix,
+)
+
+from .auth import KeyRing
+from .errors import ConflictError, NotFound, PayloadTooLarge
+from .metrics import Metrics
+from .schemas import MixIn
+
+
+@dataclass(frozen=True)
+class PlanView:
+    plan_id: str
+    name: str
+    currency: str
+    policy: Policy
+
+    @classmethod
+    def from_record(cls, record: PlanRecord) -> PlanView:
+        return cls(record.plan_id, record.name, record.currency, Policy.from_document(record.policy))
+
+
+class MixCatalog:
+    """Published mixes: solved once at publish, stored, and rebuilt from the stored document."""
+
+    def __init__(self, database: Database, settings: Settings, metrics: Metrics) -> None:
+        self._db = database
+        self._metrics = metrics
+        self._settings = settings
+        self._views: dict[tuple[str, str], MixView] = {}
+        self._published: dict[tuple[str, str], dict[str, Any]] = {}
+        self._solved_by_hash: dict[str, SolvedMix] = {}
+        self._lock = threading.Lock()
+
+    def _remember(self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any]) -> MixView:
+        view = MixView.from_solved(version, digest, solved)
+        with self._lock:
+            self._views[(plan_id, version)] = view
+            self._published[(plan_id, version)] = doc
+            self._solved_by_hash[digest] = solved
+        return view
+
+    def _load(self, plan_id: str, version: str) -> tuple[MixView, dict[str, Any]] | None:
+        key = (plan_id, version)
+        view = self._views.get(key)
+        if view is not None:
+            return view, self._published[key]
+        with self._db.reading() as s:
+            record = get_mix(s, plan_id, version)
+        if record is None:
+            return None
+        solved = self._solved_by_hash.get(record.content_hash)
+        if solved is None:
+            solved = SolvedMix.from_document(record.solved["numerics"])
+        doc = record.solved["published"]
+        return self._remember(plan_id, version, record.content_hash, solved, doc), doc
+
+    def view(self, plan_id: str, version: str) -> MixView:
+        found = self._load(plan_id, version)
+        if found is None:
+            raise NotFound(f"mix version {version!r} not found in plan {plan_id!r}")
+        return found[0]
+
+    def published(self, plan_id: str, version: str) -> dict[str, Any]:
+        found = self._load(plan_id, version)
+        if found is None:
+            raise NotFound(f"mix version {version!r} not found in plan {plan_id!r}")
+        return found[1]
+
+    def publish(self, plan: PlanView, request: MixIn) -> tuple[bool, dict[str, Any]]:
+        """(created, body). Same version and content again: (False, the first body); other content: 409."""
+        if len(request.assets) > self._settings.max_assets:
+            raise PayloadTooLarge(
+                f"{len(request.assets)} assets; this service solves at most {self._settings.max_assets}"
+            )
+        canonical = canonical_inputs(
+            assets=[a.model_dump() for a in request.assets],
+            risk_free_rate=request.risk_free_rate,
+            correlation=request.correlation,
+            covariance=request.covariance,
+            bounds=request.bounds,
+            long_only=request.long_only,
+        )
+        digest = content_hash(canonical)
+        existing = self._load(plan.plan_id, request.version)
+        if existing is not None:
+            return self._same_or_conflict(request.version, digest, existing)
+        check_rates(plan.policy, request.risk_free_rate)
+        # The same content solved before (another plan, or an earlier version) is not solved again.
+        solved = self._solved_by_hash.get(digest)
+        if solved is None or (request.cross_check and not solved.cross_checks):
+            solved = solve(
+                canonical,
+                cross_check=request.cross_check,
+                max_condition_number=self._settings.max_condition_number,
+            )
+        doc = published_document(request.version, digest, solved)
+        if not is_finite_document(doc):
+            raise AllocationError("covariance", "the solution is not finite; the inputs are degenerate")
+        try:
+            with self._db.writing() as s:
+                insert_mix(
+                    s,
+                    plan_id=plan.plan_id,
+                    version=request.version,
+                    content_hash=digest,
+                    inputs=canonical,
+                    solved={"published": doc, "numerics": solved.to_document()},
+                )
+        except Conflict:
+            # Another replica published the same version meanwhile: answer as a repeat would.
+            raced = self._load(plan.plan_id, request.version)
+            assert raced is not None
+            return self._same_or_conflict(request.version, digest, raced)
+        self._remember(plan.plan_id, request.version, digest, solved, doc)
+        self._metrics.mixes.inc()
+        return True, doc
+
+    @staticmethod
+    def _same_or_conflict(
+        version: str, digest: str, existing: tuple[MixView, dict[str, Any]]
+    ) -> tuple[bool, dict[str, Any]]:
+        view, doc = existing
+        if view.content_hash != digest:
+            raise ConflictError(
+                f"mix version {version!r} is already published with content hash "
+                f"{view.content_hash}; this request hashes to {digest}. A published mix never "
+                "changes: publish a new version"
+            )
+        return False, doc
+
+
+class AppState:
+    def __init__(self, settings: Settings, database: Database, metrics: Metrics) -> None:
+        self.settings = settings
+        self.metrics = metrics
+        self.db = database
+        self.keys = KeyRing()
+        self.mixes = MixCatalog(database, settings, metrics)
+        self._plans: dict[str, PlanView] = {}
+
+    def load_key(self, key_id: str) -> KeyRecord | None:
+        with self.db.reading() as s:
+            return get_key(s, key_id)
+
+    def plan(self, plan_id: str) -> PlanView:
+        view = self._plans.get(plan_id)
+        if view is None:
+            with self.db.reading() as s:
+                record = get_plan(s, plan_id)
+            if record is None:
+                raise NotFound(f"plan {plan_id!r} not found")
+            view = self._plans[plan_id] = PlanView.from_record(record)
+        return view
+
+    def active_version(self, plan_id: str) -> str | None:
+        with self.db.reading() as s:
+            record = get_plan(s, plan_id)
+        if record is None:
+            raise NotFound(f"plan {plan_id!r} not found")
+        return record.active_version

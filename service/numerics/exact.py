@@ -1,0 +1,101 @@
+"""The exact tangency and minimum-variance portfolios of a validated mix.
+
+Dispatch: a single feasible portfolio is answered at once; a mix without bounds uses
+the closed forms (Merton 1972); anything bounded goes to the active-set solver.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import numpy.typing as npt
+
+from service.numerics.active_set import (BoxProblem, min_variance_kkt_residual, solve_box_problem,
+                                         tangency_kkt_residual)
+from service.numerics.closed_form import ClosedForm
+from service.numerics.errors import InputError
+from service.numerics.inputs import MixInputs, budget_tolerance
+from service.numerics.max_return import FIXED, FREE, LOWER, UPPER, max_return_vertex
+from service.numerics.portfolio import Portfolio, portfolio_from_weights
+from service.numerics.warm_start import tangency_start, min_variance_start
+
+__all__ = ["tangency", "min_variance", "only_feasible_weights"]
+
+FloatArray = npt.NDArray[np.float64]
+
+
+def only_feasible_weights(inputs: MixInputs) -> FloatArray | None:
+    """The single feasible portfolio when the bounds leave no choice, else None."""
+    lo, hi = inputs.lower, inputs.upper
+    tol = budget_tolerance(inputs.n)
+    if inputs.n == 1:
+        return np.ones(1)
+    if np.all(lo == hi):
+        return lo.copy()
+    if np.all(np.isfinite(lo)) and abs(float(lo.sum()) - 1.0) <= tol:
+        return lo.copy()
+    if np.all(np.isfinite(hi)) and abs(float(hi.sum()) - 1.0) <= tol:
+        return hi.copy()
+    return None
+
+
+def _require_positive_excess(inputs: MixInputs, best_return: float) -> None:
+    if not best_return > inputs.risk_free_rate:
+        raise InputError("risk_free_rate",
+                         f"no feasible portfolio earns more than the risk-free rate {inputs.risk_free_rate:g}: "
+                         f"best expected return {best_return:.6g}")
+
+
+def _state_for(w: FloatArray, inputs: MixInputs) -> npt.NDArray[np.int8]:
+    state = np.full(inputs.n, FREE, dtype=np.int8)
+    state[w == inputs.lower] = LOWER
+    state[w == inputs.upper] = UPPER
+    state[inputs.lower == inputs.upper] = FIXED
+    return state
+
+
+def tangency(inputs: MixInputs) -> tuple[Portfolio, float]:
+    """The exact maximum-Sharpe fully invested portfolio and its KKT residual.
+
+    Raises InputError("risk_free_rate", ...) when no fully invested portfolio attains a
+    positive maximum Sharpe ratio; RuntimeError if the exact answer fails its KKT check.
+    """
+    only = only_feasible_weights(inputs)
+    if only is not None:
+        _require_positive_excess(inputs, float(inputs.expected_returns @ only))
+        state = _state_for(only, inputs)
+        residual = abs(float(only.sum()) - 1.0)
+        return portfolio_from_weights(inputs, only, "only_feasible"), residual
+    excess = inputs.expected_returns - inputs.risk_free_rate
+    if inputs.unconstrained:
+        w = ClosedForm(inputs).tangency_weights()
+        state = np.full(inputs.n, FREE, dtype=np.int8)
+        residual = tangency_kkt_residual(inputs.covariance, excess, inputs.lower, inputs.upper, w, state, 0.0)
+        _check_residual(residual, "closed-form tangency")
+        return portfolio_from_weights(inputs, w, "closed_form"), residual
+    top = max_return_vertex(inputs.expected_returns, inputs.lower, inputs.upper)
+    _require_positive_excess(inputs, top.best)
+    problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, excess)
+    solution = solve_box_problem(problem, tangency_start(inputs, excess))
+    return portfolio_from_weights(inputs, solution.weights, "active_set"), solution.kkt_residual
+
+
+def min_variance(inputs: MixInputs) -> Portfolio:
+    """The exact fully invested minimum-variance portfolio within the bounds."""
+    only = only_feasible_weights(inputs)
+    if only is not None:
+        return portfolio_from_weights(inputs, only, "only_feasible")
+    if inputs.unconstrained:
+        w = ClosedForm(inputs).min_variance_weights()
+        state = np.full(inputs.n, FREE, dtype=np.int8)
+        residual = min_variance_kkt_residual(inputs.covariance, inputs.lower, inputs.upper, w, state, 0.0)
+        _check_residual(residual, "closed-form minimum variance")
+        return portfolio_from_weights(inputs, w, "closed_form")
+    problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, None)
+    solution = solve_box_problem(problem, min_variance_start(inputs))
+    return portfolio_from_weights(inputs, solution.weights, "active_set")
+
+
+def _check_residual(residual: float, what: str) -> None:
+    from service.numerics.active_set import KKT_TOLERANCE
+    if not residual <= KKT_TOLERANCE:
+        raise RuntimeError(f"{what} failed its KKT check: residual {residual:.3g} > {KKT_TOLERANCE:g}")

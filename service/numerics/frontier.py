@@ -1,0 +1,351 @@
+"""The exact efficient frontier as corner portfolios, and the best Sharpe ratio on it.
+
+Without bounds the frontier is the two-fund line through the minimum-variance and
+tangency portfolios (Merton 1972). With bounds it is traced by the critical line
+algorithm (Markowitz): minimise w'Sw/2 - lambda mu'w on {1'w = 1, lo <= w <= hi} for
+lambda rising from 0 (minimum variance). On a fixed active set the weights are affine in
+lambda; a corner is where a free weight reaches a bound or a bounded weight's multiplier
+reaches zero. The inverse of the free block of S is carried from corner to corner by
+bordering (add an asset) and Schur downdates (drop one), O(f^2) each, refreshed from a
+fresh factorisation every few dozen updates.
+
+Between consecutive corners the weights are affine in the target return, so
+``Frontier.weights_at`` interpolates exactly, and the Sharpe ratio on each segment has a
+closed-form maximum (``best_sharpe_on_frontier``), an independent check of the tangency.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+import scipy.linalg
+
+from service.numerics.active_set import BoxProblem, solve_box_problem
+from service.numerics.closed_form import ClosedForm
+from service.numerics.errors import InputError
+from service.numerics.inputs import MixInputs
+from service.numerics.max_return import FIXED, FREE, LOWER, UPPER
+from service.numerics.portfolio import Portfolio, portfolio_from_weights
+from service.numerics.exact import only_feasible_weights
+from service.numerics.warm_start import min_variance_start
+
+__all__ = ["Frontier", "efficient_frontier", "best_sharpe_on_frontier", "UNBOUNDED_TOP_FACTOR"]
+
+FloatArray = npt.NDArray[np.float64]
+
+#: For a frontier without a top (no bounds), ``Frontier.sample`` runs from the
+#: minimum-variance return m0 to m0 + UNBOUNDED_TOP_FACTOR * (max(tangency return,
+#: max expected return) - m0).
+UNBOUNDED_TOP_FACTOR = 1.5
+
+_REFRESH_EVERY = 32
+_RETURN_RTOL = 1e-12
+
+
+@dataclass(frozen=True, eq=False)
+class Frontier:
+    """The exact efficient frontier. Between consecutive corner portfolios the weights are
+    affine in the target expected return, so any point is an exact interpolation - no re-solve.
+
+    ``unbounded_above`` marks a frontier without a top (no bounds): the last two corners
+    then span a ray and ``weights_at`` extrapolates along it above the last corner.
+    """
+
+    corner_returns: FloatArray      # (k,) increasing expected returns, first = min variance
+    corner_weights: FloatArray      # (k, n)
+    unbounded_above: bool = False
+
+    def weights_at(self, target_return: float) -> FloatArray:
+        """Weights of the frontier portfolio with expected return ``target_return``.
+
+        Raises ValueError below the minimum-variance return or above the top of a bounded
+        frontier (beyond a rounding slack).
+        """
+        m = self.corner_returns
+        target = float(target_return)
+        slack = _RETURN_RTOL * max(1.0, float(np.max(np.abs(m))))
+        if m.size == 1:
+            if abs(target - m[0]) <= slack:
+                return self.corner_weights[0].copy()
+            raise ValueError(f"the frontier is the single portfolio with expected return {m[0]:.6g}, "
+                             f"not {target:.6g}")
+        if target < m[0] - slack:
+            raise ValueError(f"target return {target:.6g} is below the minimum-variance return {m[0]:.6g}")
+        if target > m[-1] + slack and not self.unbounded_above:
+            raise ValueError(f"target return {target:.6g} is above the top of the frontier {m[-1]:.6g}")
+        if self.unbounded_above:
+            k = min(max(int(np.searchsorted(m, target, side="right")) - 1, 0), m.size - 2)
+        else:
+            target = min(max(target, float(m[0])), float(m[-1]))
+            k = min(int(np.searchsorted(m, target, side="right")) - 1, m.size - 2)
+            k = max(k, 0)
+        share = (target - m[k]) / (m[k + 1] - m[k])
+        out: FloatArray = self.corner_weights[k] + share * (self.corner_weights[k + 1] - self.corner_weights[k])
+        return out
+
+    def top_return(self, inputs: MixInputs) -> float:
+        """Highest return ``sample`` reaches (see UNBOUNDED_TOP_FACTOR)."""
+        m = self.corner_returns
+        if not self.unbounded_above:
+            return float(m[-1])
+        reach = max(float(m[-1]), float(np.max(inputs.expected_returns)))
+        return float(m[0]) + UNBOUNDED_TOP_FACTOR * (reach - float(m[0]))
+
+    def sample(self, points: int, inputs: MixInputs) -> list[Portfolio]:
+        """``points`` portfolios at evenly spaced returns from minimum variance to the top
+        (for a frontier without a top, see UNBOUNDED_TOP_FACTOR)."""
+        if points < 1:
+            raise ValueError(f"points must be >= 1, got {points}")
+        low = float(self.corner_returns[0])
+        targets = np.linspace(low, self.top_return(inputs), points) if points > 1 else np.array([low])
+        return [portfolio_from_weights(inputs, self.weights_at(float(m)), "frontier") for m in targets]
+
+
+def _single(w: FloatArray, mu: FloatArray) -> Frontier:
+    return Frontier(corner_returns=_frozen(np.array([float(mu @ w)])), corner_weights=_frozen(w[None, :]))
+
+
+def _frozen(a: FloatArray) -> FloatArray:
+    out = np.array(a, dtype=np.float64, copy=True)
+    out.setflags(write=False)
+    return out
+
+
+def _two_fund(inputs: MixInputs) -> Frontier:
+    form = ClosedForm(inputs)
+    mu = inputs.expected_returns
+    w_mv = form.min_variance_weights()
+    # Frontier direction (sums to zero): S^-1 mu - (1'S^-1 mu / 1'S^-1 1) S^-1 1.
+    s_inv_mu = form.s_inv_e + inputs.risk_free_rate * form.s_inv_1
+    direction = s_inv_mu - (float(s_inv_mu.sum()) / form.one_s_inv_1) * form.s_inv_1
+    slope = float(mu @ direction)
+    m_mv = float(mu @ w_mv)
+    if not slope > _RETURN_RTOL * max(1.0, float(np.max(np.abs(mu)))) * float(np.abs(direction).sum()):
+        return _single(w_mv, mu)
+    try:
+        second = form.tangency_weights()
+    except InputError:
+        spread = float(np.max(mu) - np.min(mu))
+        second = w_mv + (spread / slope) * direction
+    if not float(mu @ second) > m_mv:
+        second = w_mv + (max(float(np.max(mu) - np.min(mu)), 1.0) / slope) * direction
+    weights = np.vstack([w_mv, second])
+    return Frontier(corner_returns=_frozen(weights @ mu), corner_weights=_frozen(weights), unbounded_above=True)
+
+
+class _FreeInverse:
+    """Inverse of S restricted to an ordered free set, kept by bordering and downdates."""
+
+    def __init__(self, s: FloatArray, free: list[int]) -> None:
+        self.s = s
+        self.free = list(free)
+        self.updates = 0
+        self.inverse = self._fresh()
+
+    def _fresh(self) -> FloatArray:
+        idx = np.asarray(self.free, dtype=np.intp)
+        block = self.s[np.ix_(idx, idx)]
+        factor = scipy.linalg.cho_factor(block, lower=True, check_finite=False)
+        inv: FloatArray = scipy.linalg.cho_solve(factor, np.eye(idx.size), check_finite=False)
+        return inv
+
+    def add(self, j: int) -> None:
+        idx = np.asarray(self.free, dtype=np.intp)
+        col = self.s[idx, j]
+        z = self.inverse @ col
+        d = float(self.s[j, j] - col @ z)
+        self.free.append(j)
+        self.updates += 1
+        if not d > 1e-14 * float(self.s[j, j]) or self.updates >= _REFRESH_EVERY:
+            self.inverse = self._fresh()
+            self.updates = 0
+            return
+        f = idx.size
+        new = np.empty((f + 1, f + 1))
+        new[:f, :f] = self.inverse + np.outer(z, z) / d
+        new[:f, f] = -z / d
+        new[f, :f] = -z / d
+        new[f, f] = 1.0 / d
+        self.inverse = new
+
+    def remove(self, j: int) -> None:
+        p = self.free.index(j)
+        del self.free[p]
+        self.updates += 1
+        if self.updates >= _REFRESH_EVERY:
+            self.inverse = self._fresh()
+            self.updates = 0
+            return
+        keep = np.r_[0:p, p + 1:self.inverse.shape[0]]
+        m = self.inverse
+        self.inverse = m[np.ix_(keep, keep)] - np.outer(m[keep, p], m[p, keep]) / m[p, p]
+
+
+def _critical_line(inputs: MixInputs) -> Frontier:
+    s, mu, lo, hi = inputs.covariance, inputs.expected_returns, inputs.lower, inputs.upper
+    n = inputs.n
+    start = solve_box_problem(BoxProblem(s, lo, hi, None), min_variance_start(inputs))
+    state = start.state.copy()
+    lo0 = np.where(np.isfinite(lo), lo, 0.0)
+    hi0 = np.where(np.isfinite(hi), hi, 0.0)
+    c = np.where(state == UPPER, hi0, np.where((state == LOWER) | (state == FIXED), lo0, 0.0))
+    held = np.flatnonzero(c)
+    s_c = c[held] @ s[held] if held.size else np.zeros(n)
+    inv = _FreeInverse(s, [int(i) for i in np.flatnonzero(state == FREE)])
+    mu_scale = float(np.max(np.abs(mu)))
+
+    lambdas: list[float] = [0.0]
+    corners: list[FloatArray] = [start.weights.copy()]
+    lam = 0.0
+    last_moved = -1
+    unbounded = False
+    for _ in range(10 * n + 100):
+        free = np.asarray(inv.free, dtype=np.intp)
+        f = free.size
+        budget = 1.0 - float(c.sum())
+        h = s_c[free]
+        m_inv = inv.inverse
+        v = m_inv.sum(axis=1)
+        u = m_inv @ mu[free]
+        r = m_inv @ h
+        one_v = float(v.sum())
+        gamma0 = (budget + float(r.sum())) / one_v
+        gamma1 = -float(u.sum()) / one_v
+        a_f = gamma0 * v - r
+        b_f = u + gamma1 * v if f > 1 else np.zeros(1)
+        b_tol = 1e-12 * max(float(np.max(np.abs(u))), float(np.max(np.abs(v))) * abs(gamma1), np.finfo(float).tiny)
+        b_f = np.where(np.abs(b_f) <= b_tol, 0.0, b_f)
+        rows = s[free]
+        sa = a_f @ rows + s_c
+        sb = b_f @ rows
+        g0 = sa - gamma0
+        g1 = sb - mu - gamma1
+        lam_tol = 1e-12 * max(1.0, lam)
+        g_tol = 1e-13 * max(mu_scale + abs(gamma1), float(np.max(np.abs(sb))), np.finfo(float).tiny)
+
+        candidates = np.full(n, math.inf)
+        kinds = np.zeros(n, dtype=np.int8)  # new state for the asset if its event fires
+        with np.errstate(divide="ignore", invalid="ignore"):
+            up = b_f > 0.0
+            down = b_f < 0.0
+            hit_hi = np.where(up & np.isfinite(hi[free]), (hi0[free] - a_f) / b_f, math.inf)
+            hit_lo = np.where(down & np.isfinite(lo[free]), (lo0[free] - a_f) / b_f, math.inf)
+            free_event = np.minimum(hit_hi, hit_lo)
+            candidates[free] = free_event
+            kinds[free] = np.where(hit_hi <= hit_lo, UPPER, LOWER)
+            at_lower = state == LOWER
+            at_upper = state == UPPER
+            release = (at_lower & (g1 < -g_tol)) | (at_upper & (g1 > g_tol))
+            cross = np.where(release, -g0 / g1, math.inf)
+        candidates = np.where(release, cross, candidates)
+        kinds = np.where(release, FREE, kinds)
+        if last_moved >= 0 and candidates[last_moved] <= lam + lam_tol:
+            candidates[last_moved] = math.inf
+        candidates = np.where(candidates < lam - lam_tol, math.inf, candidates)
+        j = int(np.argmin(candidates))
+        lam_next = float(candidates[j])
+        if not math.isfinite(lam_next):
+            if np.any(b_f != 0.0):
+                # No bound ever stops the last segment: the frontier has no top.
+                lam_far = lam + max(1.0, lam)
+                w = np.where(state == FREE, 0.0, c)
+                w[free] = a_f + lam_far * b_f
+                lambdas.append(lam_far)
+                corners.append(w)
+                unbounded = True
+            break
+        lam_next = max(lam_next, lam)
+        w = c.copy()
+        w[free] = a_f + lam_next * b_f
+        if state[j] == FREE:
+            bound = hi[j] if kinds[j] == UPPER else lo[j]
+            w[j] = bound
+            state[j] = kinds[j]
+            c[j] = bound
+            if bound != 0.0:
+                s_c += bound * s[j]
+            inv.remove(j)
+        else:
+            if c[j] != 0.0:
+                s_c -= c[j] * s[j]
+            c[j] = 0.0
+            state[j] = FREE
+            inv.add(j)
+        lambdas.append(lam_next)
+        corners.append(w)
+        lam = lam_next
+        last_moved = j
+    else:
+        raise RuntimeError(f"critical line did not finish in {10 * n + 100} corners")
+
+    weights = np.vstack(corners)
+    # Clip rounding spill over a bound; anything larger is a bug, not rounding.
+    spill = max(float(np.max(np.where(np.isfinite(lo), lo - weights, 0.0))),
+                float(np.max(np.where(np.isfinite(hi), weights - hi, 0.0))))
+    if spill > 1e-9:
+        raise RuntimeError(f"critical line left the bounds by {spill:.3g}")
+    weights = np.clip(weights, lo, hi)
+    returns = weights @ mu
+    keep = [0]
+    for k in range(1, returns.size):
+        if returns[k] > returns[keep[-1]] + _RETURN_RTOL * max(1.0, abs(float(returns[k]))):
+            keep.append(k)
+        elif k == returns.size - 1 and unbounded:
+            keep[-1] = k
+    weights = weights[keep]
+    return Frontier(corner_returns=_frozen(weights @ mu), corner_weights=_frozen(weights),
+                    unbounded_above=unbounded and len(keep) > 1)
+
+
+def efficient_frontier(inputs: MixInputs) -> Frontier:
+    """The exact efficient frontier from minimum variance to its top."""
+    only = only_feasible_weights(inputs)
+    if only is not None:
+        return _single(only, inputs.expected_returns)
+    if inputs.unconstrained:
+        return _two_fund(inputs)
+    return _critical_line(inputs)
+
+
+def best_sharpe_on_frontier(frontier: Frontier, inputs: MixInputs) -> FloatArray:
+    """Weights of the highest-Sharpe point of the frontier, segment by segment in closed form.
+
+    On a segment w(x) = a + x d, the Sharpe ratio p(x)/sqrt(q(x)) with p affine and q
+    quadratic has one interior stationary point, x* = (p0 B - p1 A) / (p1 B - p0 C) with
+    q = A + 2 B x + C x^2; the maximum is there or at an end.
+    """
+    s, mu, rf = inputs.covariance, inputs.expected_returns, inputs.risk_free_rate
+    corners = frontier.corner_weights
+    best_w = corners[0]
+    best = -math.inf
+
+    def sharpe(w: FloatArray) -> float:
+        var = float(w @ s @ w)
+        return (float(mu @ w) - rf) / math.sqrt(var) if var > 0 else -math.inf
+
+    for w in corners:
+        value = sharpe(w)
+        if value > best:
+            best, best_w = value, w
+    for k in range(corners.shape[0] - 1):
+        a = corners[k]
+        d = corners[k + 1] - a
+        last = k == corners.shape[0] - 2
+        x_max = math.inf if (last and frontier.unbounded_above) else 1.0
+        p0, p1 = float(mu @ a) - rf, float(mu @ d)
+        sa, sd = s @ a, s @ d
+        big_a, big_b, big_c = float(a @ sa), float(a @ sd), float(d @ sd)
+        denom = p1 * big_b - p0 * big_c
+        if denom == 0.0:
+            continue
+        x = (p0 * big_b - p1 * big_a) / denom
+        if 0.0 < x < x_max:
+            w = a + x * d
+            value = sharpe(w)
+            if value > best:
+                best, best_w = value, w
+    out: FloatArray = np.array(best_w, copy=True)
+    return out

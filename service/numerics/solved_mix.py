@@ -1,0 +1,154 @@
+"""A solved risky-mix version: every exact answer plus the cross-checks, and its
+JSON-able document form (rebuilt without solving anything).
+
+Document layout (``format`` = ``DOCUMENT_FORMAT``): floats, strings and lists only.
+Infinite bounds are written as the strings ``"-inf"`` / ``"inf"``; the frontier's
+``shape`` is ``"bounded"`` or ``"unbounded_above"``. Floats are written as Python floats,
+whose JSON text round-trips bit for bit.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from service.numerics.exact import min_variance, tangency
+from service.numerics.frontier import Frontier, efficient_frontier
+from service.numerics.inputs import MixInputs
+from service.numerics.numerical_routes import CrossCheck, cross_checks
+from service.numerics.portfolio import Portfolio
+
+__all__ = ["SolvedMix", "solve_mix", "DOCUMENT_FORMAT"]
+
+FloatArray = npt.NDArray[np.float64]
+
+DOCUMENT_FORMAT = "mixline.solved_mix/1"
+
+
+@dataclass(frozen=True, eq=False)
+class SolvedMix:
+    """Exact tangency, minimum variance and frontier of one mix, with the cross-checks."""
+
+    inputs: MixInputs
+    tangency: Portfolio
+    min_variance: Portfolio
+    frontier: Frontier
+    cross_checks: tuple[CrossCheck, ...]
+    kkt_residual: float            # max KKT residual of the exact tangency (<= 1e-10 or it raised)
+
+    def to_document(self) -> dict[str, Any]:
+        """JSON-able form (floats, strings, lists); ``from_document`` inverts it exactly."""
+        inp = self.inputs
+        return {
+            "format": DOCUMENT_FORMAT,
+            "inputs": {
+                "codes": list(inp.codes),
+                "expected_returns": _floats(inp.expected_returns),
+                "covariance": [_floats(row) for row in inp.covariance],
+                "risk_free_rate": float(inp.risk_free_rate),
+                "lower": [_bound_out(x) for x in inp.lower],
+                "upper": [_bound_out(x) for x in inp.upper],
+            },
+            "tangency": _portfolio_out(self.tangency),
+            "min_variance": _portfolio_out(self.min_variance),
+            "frontier": {
+                "shape": "unbounded_above" if self.frontier.unbounded_above else "bounded",
+                "corner_returns": _floats(self.frontier.corner_returns),
+                "corner_weights": [_floats(row) for row in self.frontier.corner_weights],
+            },
+            "cross_checks": [
+                {"method": c.method, "sharpe_ratio": float(c.sharpe_ratio),
+                 "max_weight_gap": float(c.max_weight_gap), "sharpe_gap": float(c.sharpe_gap),
+                 "seconds": float(c.seconds)}
+                for c in self.cross_checks
+            ],
+            "kkt_residual": float(self.kkt_residual),
+        }
+
+    @classmethod
+    def from_document(cls, doc: dict[str, Any]) -> SolvedMix:
+        """Rebuild from ``to_document`` output WITHOUT solving anything (shapes are checked)."""
+        if doc.get("format") != DOCUMENT_FORMAT:
+            raise ValueError(f"not a solved-mix document of format {DOCUMENT_FORMAT!r}: {doc.get('format')!r}")
+        raw = doc["inputs"]
+        codes = tuple(str(c) for c in raw["codes"])
+        n = len(codes)
+        inputs = MixInputs(
+            codes=codes,
+            expected_returns=_array(raw["expected_returns"], (n,), "inputs.expected_returns"),
+            covariance=_array(raw["covariance"], (n, n), "inputs.covariance"),
+            risk_free_rate=float(raw["risk_free_rate"]),
+            lower=_frozen(np.array([_bound_in(x) for x in raw["lower"]], dtype=np.float64), (n,), "inputs.lower"),
+            upper=_frozen(np.array([_bound_in(x) for x in raw["upper"]], dtype=np.float64), (n,), "inputs.upper"),
+        )
+        fr = doc["frontier"]
+        k = len(fr["corner_returns"])
+        frontier = Frontier(
+            corner_returns=_array(fr["corner_returns"], (k,), "frontier.corner_returns"),
+            corner_weights=_array(fr["corner_weights"], (k, n), "frontier.corner_weights"),
+            unbounded_above=fr["shape"] == "unbounded_above",
+        )
+        checks = tuple(
+            CrossCheck(method=str(c["method"]), sharpe_ratio=float(c["sharpe_ratio"]),
+                       max_weight_gap=float(c["max_weight_gap"]), sharpe_gap=float(c["sharpe_gap"]),
+                       seconds=float(c["seconds"]))
+            for c in doc["cross_checks"]
+        )
+        return cls(inputs=inputs, tangency=_portfolio_in(doc["tangency"], n, "tangency"),
+                   min_variance=_portfolio_in(doc["min_variance"], n, "min_variance"),
+                   frontier=frontier, cross_checks=checks, kkt_residual=float(doc["kkt_residual"]))
+
+
+def _floats(a: FloatArray) -> list[float]:
+    return [float(x) for x in a]
+
+
+def _bound_out(x: float) -> float | str:
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    return float(x)
+
+
+def _bound_in(x: float | str) -> float:
+    if isinstance(x, str):
+        if x not in ("inf", "-inf"):
+            raise ValueError(f"a bound is a number, 'inf' or '-inf', got {x!r}")
+        return math.inf if x == "inf" else -math.inf
+    return float(x)
+
+
+def _frozen(a: FloatArray, shape: tuple[int, ...], where: str) -> FloatArray:
+    if a.shape != shape:
+        raise ValueError(f"{where} has shape {a.shape}, expected {shape}")
+    a.setflags(write=False)
+    return a
+
+
+def _array(values: Any, shape: tuple[int, ...], where: str) -> FloatArray:
+    return _frozen(np.array(values, dtype=np.float64), shape, where)
+
+
+def _portfolio_out(p: Portfolio) -> dict[str, Any]:
+    return {"weights": _floats(p.weights), "expected_return": float(p.expected_return),
+            "volatility": float(p.volatility), "sharpe_ratio": float(p.sharpe_ratio), "method": p.method}
+
+
+def _portfolio_in(raw: dict[str, Any], n: int, where: str) -> Portfolio:
+    return Portfolio(weights=_array(raw["weights"], (n,), f"{where}.weights"),
+                     expected_return=float(raw["expected_return"]), volatility=float(raw["volatility"]),
+                     sharpe_ratio=float(raw["sharpe_ratio"]), method=str(raw["method"]))
+
+
+def solve_mix(inputs: MixInputs, *, cross_check: bool = True) -> SolvedMix:
+    """Solve one validated mix exactly (tangency, minimum variance, frontier) and, unless
+    ``cross_check`` is false, run the three numerical routes against the tangency."""
+    best, residual = tangency(inputs)
+    lowest = min_variance(inputs)
+    frontier = efficient_frontier(inputs)
+    checks = cross_checks(inputs, best) if cross_check else ()
+    return SolvedMix(inputs=inputs, tangency=best, min_variance=lowest, frontier=frontier,
+                     cross_checks=checks, kkt_residual=residual)

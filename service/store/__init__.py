@@ -1,0 +1,50 @@
+"""mixline's store: plans, API keys, risky-mix versions and the hash-chained allocation log.
+
+Public surface only; the modules behind it are private. SQLite (one file) and
+PostgreSQL are both supported through the same calls.
+"""
+
+from service.store.chain import GENESIS_HASH, verify_chain
+from service.store.database import Database
+from service.store.errors import Conflict
+from service.store.key_secrets import secret_hash, secret_matches
+from service.store.records import BadRow, ChainReport, KeyRecord, LogBatch, MixRecord, PlanRecord
+from service.store.repository import (
+    get_allocation,
+    get_key,
+    get_mix,
+    get_plan,
+    insert_key,
+    insert_mix,
+    insert_plan,
+    list_allocations,
+    set_active_version,
+    upsert_key,
+)
+from service.store.writer import ChainWriter
+
+__all__ = [
+    "GENESIS_HASH",
+    "BadRow",
+    "ChainReport",
+    "ChainWriter",
+    "Conflict",
+    "Database",
+    "KeyRecord",
+    "LogBatch",
+    "MixRecord",
+    "PlanRecord",
+    "get_allocation",
+    "get_key",
+    "get_mix",
+    "get_plan",
+    "insert_key",
+    "insert_mix",
+    "insert_plan",
+    "list_allocations",
+    "secret_hash",
+    "secret_matches",
+    "set_active_version",
+    "upsert_key",
+    "verify_chain",
+]

@@ -1,0 +1,194 @@
+"""The SQL for plans, API keys, risky-mix versions and reading the allocation log.
+
+Each function takes a Session from ``Database.reading()`` / ``Database.writing()`` and
+leaves the transaction to it. Inserts use ON CONFLICT DO NOTHING and raise Conflict
+when nothing was inserted, so a duplicate never aborts the caller's transaction (on
+PostgreSQL a unique violation would poison it). Appending to the log is the
+ChainWriter's job alone; nothing here writes allocations.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import orjson
+from sqlalchemy import Insert, select, update
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.orm import Session
+
+from service.store.errors import Conflict
+from service.store.records import KeyRecord, MixRecord, PlanRecord
+from service.store.schema import Allocation, ApiKey, Mix, Plan, json_text, utc_now
+
+
+def _insert(session: Session, table: Any) -> Insert:
+    name = session.get_bind().dialect.name
+    if name == "postgresql":
+        return postgresql.insert(table)
+    if name == "sqlite":
+        return sqlite.insert(table)
+    raise NotImplementedError(f"dialect {name!r} is not supported")
+
+
+def _insert_new(session: Session, table: Any, what: str, values: dict[str, Any]) -> None:
+    stmt = (
+        _insert(session, table)
+        .values(**values)
+        .on_conflict_do_nothing()
+        .execution_options(preserve_rowcount=True)  # psycopg reports -1 otherwise
+    )
+    if session.execute(stmt).rowcount == 0:  # type: ignore[attr-defined]
+        raise Conflict(f"{what} already exists")
+
+
+def insert_plan(
+    s: Session, *, plan_id: str, name: str, currency: str, policy: dict[str, Any]
+) -> None:
+    _insert_new(
+        s,
+        Plan,
+        f"plan {plan_id!r}",
+        dict(
+            plan_id=plan_id,
+            name=name,
+            currency=currency,
+            policy=json_text(policy),
+            active_version=None,
+            created_at=utc_now(),
+        ),
+    )
+
+
+def get_plan(s: Session, plan_id: str) -> PlanRecord | None:
+    row = s.execute(select(Plan.__table__).where(Plan.plan_id == plan_id)).one_or_none()
+    if row is None:
+        return None
+    return PlanRecord(
+        plan_id=row.plan_id,
+        name=row.name,
+        currency=row.currency,
+        policy=orjson.loads(row.policy),
+        active_version=row.active_version,
+        created_at=row.created_at,
+    )
+
+
+def insert_key(
+    s: Session, *, key_id: str, plan_id: str | None, role: str, secret_hash: str
+) -> None:
+    _insert_new(
+        s,
+        ApiKey,
+        f"key {key_id!r}",
+        dict(
+            key_id=key_id,
+            plan_id=plan_id,
+            role=role,
+            secret_hash=secret_hash,
+            created_at=utc_now(),
+        ),
+    )
+
+
+def upsert_key(
+    s: Session, *, key_id: str, plan_id: str | None, role: str, secret_hash: str
+) -> None:
+    """Insert the key or overwrite its plan, role and secret (created_at is kept)."""
+    stmt = _insert(s, ApiKey).values(
+        key_id=key_id, plan_id=plan_id, role=role, secret_hash=secret_hash, created_at=utc_now()
+    )
+    stmt = stmt.on_conflict_do_update(
+        index_elements=[ApiKey.key_id],
+        set_={
+            "plan_id": stmt.excluded.plan_id,
+            "role": stmt.excluded.role,
+            "secret_hash": stmt.excluded.secret_hash,
+        },
+    )
+    s.execute(stmt)
+
+
+def get_key(s: Session, key_id: str) -> KeyRecord | None:
+    row = s.execute(select(ApiKey.__table__).where(ApiKey.key_id == key_id)).one_or_none()
+    if row is None:
+        return None
+    return KeyRecord(
+        key_id=row.key_id,
+        plan_id=row.plan_id,
+        role=row.role,
+        secret_hash=row.secret_hash,
+        created_at=row.created_at,
+    )
+
+
+def insert_mix(
+    s: Session,
+    *,
+    plan_id: str,
+    version: str,
+    content_hash: str,
+    inputs: dict[str, Any],
+    solved: dict[str, Any],
+) -> None:
+    _insert_new(
+        s,
+        Mix,
+        f"mix version {version!r} of plan {plan_id!r}",
+        dict(
+            plan_id=plan_id,
+            version=version,
+            content_hash=content_hash,
+            inputs=json_text(inputs),
+            solved=json_text(solved),
+            created_at=utc_now(),
+        ),
+    )
+
+
+def get_mix(s: Session, plan_id: str, version: str) -> MixRecord | None:
+    row = s.execute(
+        select(Mix.__table__).where(Mix.plan_id == plan_id, Mix.version == version)
+    ).one_or_none()
+    if row is None:
+        return None
+    return MixRecord(
+        plan_id=row.plan_id,
+        version=row.version,
+        content_hash=row.content_hash,
+        inputs=orjson.loads(row.inputs),
+        solved=orjson.loads(row.solved),
+        created_at=row.created_at,
+    )
+
+
+def set_active_version(s: Session, plan_id: str, version: str) -> None:
+    """Point the plan at one of its published mixes.
+
+    Raises LookupError if the plan has no mix ``version`` (or the plan does not exist).
+    """
+    published = s.execute(
+        select(Mix.version).where(Mix.plan_id == plan_id, Mix.version == version)
+    ).one_or_none()
+    if published is None:
+        raise LookupError(f"plan {plan_id!r} has no mix version {version!r}")
+    s.execute(update(Plan).where(Plan.plan_id == plan_id).values(active_version=version))
+
+
+def get_allocation(s: Session, plan_id: str, allocation_id: str) -> str | None:
+    return s.execute(
+        select(Allocation.body).where(
+            Allocation.allocation_id == allocation_id, Allocation.plan_id == plan_id
+        )
+    ).scalar_one_or_none()
+
+
+def list_allocations(s: Session, plan_id: str, member_id: str, *, limit: int = 100) -> list[str]:
+    """The member's logged allocation bodies, newest first."""
+    return list(
+        s.execute(
+            select(Allocation.body)
+            .where(Allocation.plan_id == plan_id, Allocation.member_id == member_id)
+            .order_by(Allocation.seq.desc())
+            .limit(limit)
+        ).scalars()
+    )

@@ -1,0 +1,176 @@
+"""Round trips through the repository functions, on SQLite and PostgreSQL."""
+
+from __future__ import annotations
+
+import hashlib
+from datetime import UTC, datetime, timedelta
+
+import orjson
+import pytest
+from sqlalchemy import text
+
+import service.store as store
+from service.store import (
+    Conflict,
+    Database,
+    get_allocation,
+    get_key,
+    get_mix,
+    get_plan,
+    insert_key,
+    insert_mix,
+    insert_plan,
+    list_allocations,
+    secret_hash,
+    secret_matches,
+    set_active_version,
+    upsert_key,
+)
+from tests.store.conftest import AppendRows
+
+POLICY = {"max_risky_fraction": 1.5, "min_risky_fraction": 0.1, "borrowing_rate": 0.045}
+INPUTS = {"risk_free_rate": 0.02, "assets": [{"code": "GLEQ", "expected_return": 0.07}]}
+SOLVED = {"tangency": {"weights": {"GLEQ": 1.0}, "sharpe_ratio": 0.31}}
+
+
+def test_public_names_are_exactly_the_interface() -> None:
+    assert sorted(store.__all__) == sorted(
+        [
+            "GENESIS_HASH", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database",
+            "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
+            "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
+            "list_allocations", "secret_hash", "secret_matches", "set_active_version",
+            "upsert_key", "verify_chain",
+        ]
+    )
+    assert all(hasattr(store, name) for name in store.__all__)
+
+
+def test_plan_round_trip(database: Database, new_plan_id: str) -> None:
+    before = datetime.now(UTC)
+    with database.writing() as s:
+        insert_plan(s, plan_id=new_plan_id, name="Harbour Lane", currency="EUR", policy=POLICY)
+    with database.reading() as s:
+        plan = get_plan(s, new_plan_id)
+        assert get_plan(s, new_plan_id + "-other") is None
+    assert plan is not None
+    assert (plan.plan_id, plan.name, plan.currency) == (new_plan_id, "Harbour Lane", "EUR")
+    assert plan.policy == POLICY
+    assert plan.active_version is None
+    assert plan.created_at.tzinfo is not None
+    # Database clock and ours are one machine; a second of slack covers rounding.
+    assert before - timedelta(seconds=1) <= plan.created_at <= datetime.now(UTC)
+
+
+def test_json_is_stored_as_identical_sorted_text(database: Database, new_plan_id: str) -> None:
+    policy = {"z": 1, "a": {"y": 2, "b": 3}}
+    with database.writing() as s:
+        insert_plan(s, plan_id=new_plan_id, name="P", currency="EUR", policy=policy)
+    with database.reading() as s:
+        stored = s.execute(
+            text("SELECT policy FROM plans WHERE plan_id = :p"), {"p": new_plan_id}
+        ).scalar_one()
+    assert stored == '{"a":{"b":3,"y":2},"z":1}'
+    assert orjson.loads(stored) == policy
+
+
+def test_duplicate_plan_is_a_conflict_and_keeps_the_transaction_usable(
+    database: Database, new_plan_id: str
+) -> None:
+    with database.writing() as s:
+        insert_plan(s, plan_id=new_plan_id, name="First", currency="EUR", policy={})
+    with database.writing() as s:
+        with pytest.raises(Conflict, match=new_plan_id):
+            insert_plan(s, plan_id=new_plan_id, name="Second", currency="USD", policy={})
+        # On PostgreSQL a raised unique violation would have aborted this transaction.
+        insert_key(s, key_id=f"k-{new_plan_id}", plan_id=new_plan_id, role="portal",
+                   secret_hash=secret_hash("s"))
+    with database.reading() as s:
+        plan = get_plan(s, new_plan_id)
+        assert plan is not None and plan.name == "First"
+        assert get_key(s, f"k-{new_plan_id}") is not None
+
+
+def test_writing_rolls_back_on_error(database: Database, new_plan_id: str) -> None:
+    with pytest.raises(RuntimeError, match="abandon"):
+        with database.writing() as s:
+            insert_plan(s, plan_id=new_plan_id, name="P", currency="EUR", policy={})
+            raise RuntimeError("abandon")
+    with database.reading() as s:
+        assert get_plan(s, new_plan_id) is None
+
+
+def test_key_round_trip_conflict_and_upsert(database: Database, plan_id: str) -> None:
+    key_id = f"key-{plan_id}"
+    with database.writing() as s:
+        insert_key(s, key_id=key_id, plan_id=plan_id, role="committee",
+                   secret_hash=secret_hash("first"))
+    with database.writing() as s, pytest.raises(Conflict):
+        insert_key(s, key_id=key_id, plan_id=plan_id, role="portal",
+                   secret_hash=secret_hash("second"))
+    with database.reading() as s:
+        key = get_key(s, key_id)
+        assert get_key(s, key_id + "-other") is None
+    assert key is not None
+    assert (key.key_id, key.plan_id, key.role) == (key_id, plan_id, "committee")
+    assert secret_matches("first", key.secret_hash)
+    assert key.created_at.tzinfo is not None
+
+    operator_id = f"op-{plan_id}"
+    with database.writing() as s:
+        upsert_key(s, key_id=operator_id, plan_id=None, role="operator",
+                   secret_hash=secret_hash("boot-1"))
+    with database.writing() as s:
+        upsert_key(s, key_id=operator_id, plan_id=None, role="operator",
+                   secret_hash=secret_hash("boot-2"))
+    with database.reading() as s:
+        operator = get_key(s, operator_id)
+    assert operator is not None and operator.plan_id is None and operator.role == "operator"
+    assert secret_matches("boot-2", operator.secret_hash)
+    assert not secret_matches("boot-1", operator.secret_hash)
+
+
+def test_secret_hash_is_sha256_hex() -> None:
+    # Reference: hashlib itself.
+    assert secret_hash("a-secret") == hashlib.sha256(b"a-secret").hexdigest()
+    assert secret_matches("a-secret", secret_hash("a-secret"))
+    assert not secret_matches("b-secret", secret_hash("a-secret"))
+
+
+def test_mix_round_trip_conflict_and_activation(database: Database, plan_id: str) -> None:
+    with database.writing() as s:
+        insert_mix(s, plan_id=plan_id, version="2026-q4", content_hash="c" * 64,
+                   inputs=INPUTS, solved=SOLVED)
+    with database.writing() as s, pytest.raises(Conflict, match="2026-q4"):
+        insert_mix(s, plan_id=plan_id, version="2026-q4", content_hash="d" * 64,
+                   inputs={}, solved={})
+    with database.reading() as s:
+        mix = get_mix(s, plan_id, "2026-q4")
+        assert get_mix(s, plan_id, "2027-q1") is None
+    assert mix is not None
+    assert (mix.plan_id, mix.version, mix.content_hash) == (plan_id, "2026-q4", "c" * 64)
+    assert (mix.inputs, mix.solved) == (INPUTS, SOLVED)
+    assert mix.created_at.tzinfo is not None
+
+    with database.writing() as s:
+        set_active_version(s, plan_id, "2026-q4")
+    with database.reading() as s:
+        plan = get_plan(s, plan_id)
+    assert plan is not None and plan.active_version == "2026-q4"
+
+    with database.writing() as s, pytest.raises(LookupError, match="2027-q1"):
+        set_active_version(s, plan_id, "2027-q1")
+
+
+def test_allocation_reads(database: Database, plan_id: str, append_rows: AppendRows) -> None:
+    ids = append_rows(plan_id, 7, member_ids=["m-ana", "m-bo"] * 3 + ["m-ana"])
+    with database.reading() as s:
+        first = get_allocation(s, plan_id, ids[0])
+        assert first is not None and orjson.loads(first)["allocation_id"] == ids[0]
+        assert get_allocation(s, plan_id, "alloc-missing") is None
+        assert get_allocation(s, "plan-other", ids[0]) is None  # never across plans
+        ana = [orjson.loads(b)["allocation_id"] for b in list_allocations(s, plan_id, "m-ana")]
+        assert ana == [ids[6], ids[4], ids[2], ids[0]]  # newest first
+        latest_two = list_allocations(s, plan_id, "m-ana", limit=2)
+        assert [orjson.loads(b)["allocation_id"] for b in latest_two] == [ids[6], ids[4]]
+        assert list_allocations(s, plan_id, "m-nobody") == []

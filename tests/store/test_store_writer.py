@@ -1,0 +1,190 @@
+"""The group-commit ChainWriter: concurrency, ordering, failure isolation, shutdown."""
+
+from __future__ import annotations
+
+import threading
+from concurrent.futures import Future, ThreadPoolExecutor, wait
+from typing import Any
+
+import pytest
+from sqlalchemy import text
+from sqlalchemy.exc import IntegrityError
+
+from service.store import ChainWriter, Database, LogBatch, verify_chain
+from tests.store.conftest import CREATED_AT, MIX_VERSION, AppendRows, allocation_body
+
+
+def batch(plan_id: str, allocation_ids: list[str], member_id: str = "m-ana") -> LogBatch:
+    return LogBatch(
+        plan_id=plan_id,
+        mix_version=MIX_VERSION,
+        created_at=CREATED_AT,
+        allocation_ids=allocation_ids,
+        member_ids=[member_id] * len(allocation_ids),
+        bodies=[allocation_body(plan_id, a, member_id) for a in allocation_ids],
+    )
+
+
+def logged_ids(database: Database, plan_id: str) -> list[tuple[int, str]]:
+    with database.reading() as s:
+        return [
+            (row.seq, row.allocation_id)
+            for row in s.execute(
+                text("SELECT seq, allocation_id FROM allocations WHERE plan_id = :p ORDER BY seq"),
+                {"p": plan_id},
+            )
+        ]
+
+
+def test_sixteen_threads_of_single_appends(database: Database, plan_id: str) -> None:
+    threads, per_thread = 16, 50
+    start = threading.Barrier(threads)
+
+    def client(t: int) -> None:
+        start.wait()
+        for i in range(per_thread):
+            database.writer.append(batch(plan_id, [f"{plan_id}-t{t}-{i}"]))
+
+    with ThreadPoolExecutor(threads) as pool:
+        for done in [pool.submit(client, t) for t in range(threads)]:
+            done.result()
+
+    rows = logged_ids(database, plan_id)
+    assert [seq for seq, _ in rows] == list(range(1, threads * per_thread + 1))
+    assert len({a for _, a in rows}) == threads * per_thread
+    report = verify_chain(database, plan_id)
+    assert report.ok and report.checked == threads * per_thread
+    # Each client's own appends keep their order in the chain.
+    for t in range(threads):
+        mine = [a for _, a in rows if a.startswith(f"{plan_id}-t{t}-")]
+        assert mine == [f"{plan_id}-t{t}-{i}" for i in range(per_thread)]
+
+
+def test_large_batch_in_one_go(database: Database, plan_id: str) -> None:
+    n = 5_000  # above the PostgreSQL COPY threshold
+    ids = [f"{plan_id}-{i}" for i in range(n)]
+    database.writer.append(batch(plan_id, ids))
+    assert logged_ids(database, plan_id) == list(enumerate(ids, start=1))
+    assert verify_chain(database, plan_id).ok
+
+
+def test_one_bad_job_fails_alone(database: Database, plan_id: str) -> None:
+    futures: list[Future[None]] = []
+    for i in range(20):
+        futures.append(database.writer.submit(batch(plan_id, [f"{plan_id}-early-{i}"])))
+    unknown_plan = database.writer.submit(batch(plan_id + "-missing", [f"{plan_id}-orphan"]))
+    duplicate = database.writer.submit(batch(plan_id, [f"{plan_id}-early-0"]))
+    for i in range(20):
+        futures.append(database.writer.submit(batch(plan_id, [f"{plan_id}-late-{i}"])))
+
+    wait([*futures, unknown_plan, duplicate])
+    assert all(f.exception() is None for f in futures)
+    with pytest.raises(IntegrityError):
+        unknown_plan.result()
+    with pytest.raises(IntegrityError):
+        duplicate.result()
+    assert [seq for seq, _ in logged_ids(database, plan_id)] == list(range(1, 41))
+    assert verify_chain(database, plan_id).ok
+
+
+def test_groups_keep_submission_order_and_split_big_batches(
+    database: Database, plan_id: str
+) -> None:
+    writer = ChainWriter(database.engine, max_group_rows=10)
+    writer.start()
+    try:
+        sizes = [4, 4, 25, 4, 1, 9, 3]
+        submitted: list[list[str]] = [
+            [f"{plan_id}-b{b}-{i}" for i in range(size)] for b, size in enumerate(sizes)
+        ]
+        futures = [writer.submit(batch(plan_id, ids)) for ids in submitted]
+        for future in futures:
+            future.result()
+    finally:
+        writer.close()
+    expected = [a for ids in submitted for a in ids]
+    assert logged_ids(database, plan_id) == list(enumerate(expected, start=1))
+    assert verify_chain(database, plan_id).ok
+
+
+def test_two_writers_on_one_database_share_one_chain(db_url: str, plan_id: str) -> None:
+    # Two Database objects stand for two replicas behind a load balancer.
+    replicas = [Database(db_url), Database(db_url)]
+    for replica in replicas:
+        replica.start()
+    try:
+        def client(r: int) -> None:
+            for i in range(40):
+                replicas[r].writer.append(batch(plan_id, [f"{plan_id}-r{r}-{i}"]))
+
+        with ThreadPoolExecutor(4) as pool:
+            for done in [pool.submit(client, r % 2) for r in range(2)]:
+                done.result()
+        assert [seq for seq, _ in logged_ids(replicas[0], plan_id)] == list(range(1, 81))
+        assert verify_chain(replicas[1], plan_id).ok
+    finally:
+        for replica in replicas:
+            replica.close()
+
+
+def test_malformed_batches_are_refused_at_submit(database: Database, plan_id: str) -> None:
+    good = batch(plan_id, [f"{plan_id}-1", f"{plan_id}-2"])
+    with pytest.raises(ValueError, match="must match"):
+        database.writer.submit(
+            LogBatch(plan_id, MIX_VERSION, CREATED_AT, good.allocation_ids, ["m"], good.bodies)
+        )
+    with pytest.raises(ValueError, match="separator"):
+        database.writer.submit(
+            LogBatch(plan_id, MIX_VERSION, CREATED_AT, good.allocation_ids, ["m", "m\x1fx"],
+                     good.bodies)
+        )
+    with pytest.raises(ValueError, match="created_at"):
+        database.writer.submit(
+            LogBatch(plan_id, MIX_VERSION, "", good.allocation_ids, ["m", "m"], good.bodies)
+        )
+    assert logged_ids(database, plan_id) == []
+
+
+def test_empty_batch_resolves_without_writing(database: Database, plan_id: str) -> None:
+    future = database.writer.submit(batch(plan_id, []))
+    assert future.done() and future.result() is None
+    assert logged_ids(database, plan_id) == []
+
+
+def test_close_writes_what_was_submitted_then_refuses(db_url: str, plan_id: str) -> None:
+    db = Database(db_url)
+    db.start()
+    futures = [db.writer.submit(batch(plan_id, [f"{plan_id}-{i}"])) for i in range(30)]
+    db.writer.close()
+    assert all(f.done() and f.exception() is None for f in futures)
+    with pytest.raises(RuntimeError, match="not running"):
+        db.writer.submit(batch(plan_id, [f"{plan_id}-late"]))
+    db.start()  # a stopped writer can be started again
+    db.writer.append(batch(plan_id, [f"{plan_id}-again"]))
+    db.close()
+    db.close()  # idempotent
+    check = Database(db_url)
+    try:
+        assert len(logged_ids(check, plan_id)) == 31
+        assert verify_chain(check, plan_id).ok
+    finally:
+        check.close()
+
+
+def test_writer_survives_a_lost_connection(
+    database: Database, plan_id: str, append_rows: AppendRows
+) -> None:
+    if database.dialect != "postgresql":
+        pytest.skip("needs a server that can drop our connection")
+    append_rows(plan_id, 2)
+    with database.engine.connect() as conn:
+        killed: Any = conn.execute(
+            text(
+                "SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity "
+                "WHERE datname = current_database() AND pid <> pg_backend_pid()"
+            )
+        ).scalar_one()
+    assert killed >= 1  # at least the writer's own connection
+    append_rows(plan_id, 3)
+    assert [seq for seq, _ in logged_ids(database, plan_id)] == [1, 2, 3, 4, 5]
+    assert verify_chain(database, plan_id).ok
