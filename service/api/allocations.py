@@ -6,12 +6,13 @@ import asyncio
 from typing import Annotated
 
 import orjson
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
 from service.store import get_allocation, list_allocations
 
 from .allocating import answer, log_batch, utc_now_text
+from .bodies import parse_body, request_body_schema
 from .deps import CallerDep, StateDep
 from .errors import NotFound
 from .responses import AUTHED, problems, raw_json_response
@@ -24,11 +25,12 @@ READERS = ("portal",)
 
 @router.post(
     "", status_code=201, response_model=AllocationOut, operation_id="create_allocation",
-    responses=problems(*AUTHED, 409),
+    responses=problems(*AUTHED, 409), openapi_extra=request_body_schema("AllocationIn"),
 )
-async def create_allocation(plan_id: str, body: AllocationIn, caller: CallerDep, state: StateDep) -> Response:
+async def create_allocation(plan_id: str, request: Request, caller: CallerDep, state: StateDep) -> Response:
     caller.require(plan_id, "portal")
     plan = state.plan(plan_id)
+    body = parse_body(AllocationIn, await request.body())
     created_at = utc_now_text()
     doc = answer(state, plan, body, created_at=created_at)
     batch, bodies = log_batch(plan_id, body.mix_version, created_at, [doc])

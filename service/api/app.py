@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Any
 
 from fastapi import FastAPI
+from pydantic.json_schema import models_json_schema
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.settings import Settings
@@ -18,7 +19,7 @@ from . import allocations, audit, errors, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
 from .errors import PROBLEM_MEDIA_TYPE, problem_response
 from .metrics import Metrics, MetricsMiddleware
-from .schemas import Problem
+from .schemas import AllocationIn, Problem
 from .state import AppState
 
 EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
@@ -110,7 +111,13 @@ def install_openapi(app: FastAPI) -> None:
             return app.openapi_schema
         doc = original()
         components = doc.setdefault("components", {}).setdefault("schemas", {})
-        components["Problem"] = Problem.model_json_schema(ref_template="#/components/schemas/{model}")
+        # Models of the bodies that hot routes read themselves (see bodies.py), and the problem shape.
+        _, defs = models_json_schema(
+            [(Problem, "validation"), (AllocationIn, "validation")],
+            ref_template="#/components/schemas/{model}",
+        )
+        for name, schema in defs.get("$defs", {}).items():
+            components.setdefault(name, schema)
         for name in ("HTTPValidationError", "ValidationError"):
             components.pop(name, None)
         examples = _load_examples()

@@ -13,7 +13,7 @@ from .state import AppState
 _bearer = HTTPBearer(auto_error=False, description="Bearer <secret> issued by POST /v1/plans/{plan_id}/keys")
 
 
-def get_state(request: Request) -> AppState:
+async def get_state(request: Request) -> AppState:
     state: AppState = request.app.state.mixline
     return state
 
@@ -21,7 +21,9 @@ def get_state(request: Request) -> AppState:
 StateDep = Annotated[AppState, Depends(get_state)]
 
 
-def current_caller(
+# Async so that FastAPI does not hop to a worker thread for them on every request; a key is read
+# from the database only on its first use in this process.
+async def current_caller(
     request: Request,
     state: StateDep,
     _credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],

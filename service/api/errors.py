@@ -130,9 +130,12 @@ def validation_errors(exc: RequestValidationError) -> list[dict[str, str]]:
         if reason.startswith("Value error, "):
             reason = reason[len("Value error, ") :]
         if e.get("type") == "json_invalid":
-            # loc holds the character offset; the body itself is never echoed.
+            # FastAPI puts the character offset in loc, pydantic a parser message in ctx; the
+            # body itself is never echoed.
             position = next((p for p in e.get("loc", ()) if isinstance(p, int)), None)
-            errors.append(field_error("body", f"invalid JSON at character {position}"))
+            parser = (e.get("ctx") or {}).get("error")
+            where = f"at character {position}" if position is not None else str(parser or "")
+            errors.append(field_error("body", f"invalid JSON {where}".strip()))
             continue
         field = _location(e.get("loc", ()))
         if FIELD_MARK in reason:
