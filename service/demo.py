@@ -23,8 +23,8 @@ _ASSETS = [
     ("HARBOR_EQ", 0.074, 0.165),  # home-market shares
     ("FARSHORE_EQ", 0.079, 0.185),  # overseas shares
     ("FRONTIER_EQ", 0.088, 0.245),  # young-market shares
-    ("CIVIC_BOND", 0.039, 0.055),  # long public bonds
-    ("GUILD_CREDIT", 0.049, 0.082),  # company bonds
+    ("CIVIC_BOND", 0.035, 0.055),  # long public bonds
+    ("GUILD_CREDIT", 0.042, 0.082),  # company bonds
     ("TIMBERLAND", 0.061, 0.135),  # land and forestry
 ]
 _CORRELATION = [

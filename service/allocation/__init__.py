@@ -27,10 +27,12 @@ from .preferences import (
     choose_risky_fraction,
 )
 from .recommendation import Account, account_from_request, line_for, recommend
+from .records import RECORD_FORM, record_text, render, render_text
 from .routing import ContributionSplit, route_contribution
 
 __all__ = [
     "DISCLOSURES",
+    "RECORD_FORM",
     "Account",
     "AllocationError",
     "AllocationLine",
@@ -58,6 +60,9 @@ __all__ = [
     "parse_amount",
     "published_document",
     "recommend",
+    "record_text",
+    "render",
+    "render_text",
     "route_contribution",
     "solve",
     "split_units",

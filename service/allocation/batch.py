@@ -38,6 +38,11 @@ class BatchInput:
     def size(self) -> int:
         return int(self.kind.shape[0])
 
+    def subset(self, rows: np.ndarray) -> BatchInput:
+        pick = lambda a: None if a is None else a[rows]  # noqa: E731
+        return BatchInput(self.kind[rows], self.value[rows], self.confidence[rows], self.horizon[rows],
+                          self.total[rows], pick(self.risky_held), pick(self.contribution))
+
 
 @dataclass(frozen=True)
 class BatchResult:
@@ -51,6 +56,12 @@ class BatchResult:
     volatility: np.ndarray
     to_risky: np.ndarray | None  # contribution split, where holdings were given (else -1)
     to_safe: np.ndarray | None
+
+    def subset(self, rows: np.ndarray) -> BatchResult:
+        pick = lambda a: None if a is None else a[rows]  # noqa: E731
+        return BatchResult(self.risky_fraction[rows], self.unconstrained[rows], self.limited[rows],
+                           self.risky[rows], self.safe[rows], self.by_asset[rows], self.expected_return[rows],
+                           self.volatility[rows], pick(self.to_risky), pick(self.to_safe))
 
 
 class BatchError(AllocationError):

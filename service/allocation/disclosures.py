@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+# The log records which texts a member was shown by this version; texts never change in place,
+# a new wording gets a new version and the old one stays here.
+DISCLOSURES_VERSION = "2026-12"
+
 DISCLOSURES: tuple[str, ...] = (
     "This split follows from the plan's stated capital-market assumptions (expected returns, "
     "volatilities, correlations and the risk-free rate); they are estimates, and actual returns "
@@ -19,8 +23,12 @@ BORROWING_DISCLOSURE = (
 )
 
 
-def disclosures_for(risky_fraction: float) -> list[str]:
-    notes = list(DISCLOSURES)
+_BY_VERSION = {DISCLOSURES_VERSION: (DISCLOSURES, BORROWING_DISCLOSURE)}
+
+
+def disclosures_for(risky_fraction: float, version: str = DISCLOSURES_VERSION) -> list[str]:
+    general, borrowing = _BY_VERSION[version]
+    notes = list(general)
     if risky_fraction > 1.0:
-        notes.append(BORROWING_DISCLOSURE)
+        notes.append(borrowing)
     return notes

@@ -6,11 +6,12 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from .disclosures import disclosures_for
+from .disclosures import DISCLOSURES_VERSION
 from .errors import AllocationError
 from .line import AllocationLine
 from .mixes import MixView
 from .money import format_units, parse_amount, risky_units, split_units
+from .records import RECORD_FORM
 from .policy import Policy
 from .preferences import Preference, choose_risky_fraction
 from .routing import route_contribution
@@ -81,50 +82,36 @@ def recommend(
     preference_document: Mapping[str, Any],
     account: Account,
 ) -> dict[str, Any]:
-    """The full answer document, which is also exactly what the audit log stores."""
+    """The allocation record (see records.py): what the log keeps and the answer is rendered from."""
     line = line_for(view, policy)
     choice = choose_risky_fraction(preference, line, policy)
     y = choice.risky_fraction
     risky = risky_units(account.total, y)
-    safe = account.total - risky
-    by_asset = split_units(risky, view.weights)
-    doc: dict[str, Any] = {
+    record: dict[str, Any] = {
+        "form": RECORD_FORM,
         "allocation_id": allocation_id,
         "plan_id": plan_id,
         "member_id": member_id,
         "mix_version": view.version,
         "mix_content_hash": view.content_hash,
+        "created_at": created_at,
+        "currency": currency,
         "preference": dict(preference_document),
         "risky_fraction": y,
-        "safe_fraction": 1.0 - y,
         "unconstrained_risky_fraction": choice.unconstrained_risky_fraction,
         "limited_by": choice.limited_by,
-        "currency": currency,
-        "amount": format_units(account.total, currency),
-        "amounts": {"risky": format_units(risky, currency), "safe": format_units(safe, currency)},
-        "by_asset": {
-            code: format_units(int(units), currency)
-            for code, units in zip(view.codes, by_asset, strict=True)
-        },
         "expected_return": line.expected_return(y),
         "volatility": line.volatility(y),
-        "disclosures": disclosures_for(y),
-        "created_at": created_at,
+        "amount_minor": account.total,
+        "split_minor": [risky, account.total - risky],
+        "by_asset_minor": [int(u) for u in split_units(risky, view.weights)],
+        "disclosures_version": DISCLOSURES_VERSION,
     }
     if account.routed:
         assert account.risky_held is not None and account.safe_held is not None
-        split = route_contribution(account.risky_held, account.contribution or 0, risky)
-        doc["holdings"] = {
-            "risky": format_units(account.risky_held, currency),
-            "safe": format_units(account.safe_held, currency),
-        }
-        doc["contribution"] = format_units(account.contribution or 0, currency)
-        doc["contribution_split"] = {
-            "risky": format_units(split.risky, currency),
-            "safe": format_units(split.safe, currency),
-        }
-        doc["after_contribution"] = {
-            "risky": format_units(account.risky_held + split.risky, currency),
-            "safe": format_units(account.safe_held + split.safe, currency),
-        }
-    return doc
+        contribution = account.contribution or 0
+        split = route_contribution(account.risky_held, contribution, risky)
+        record["holdings_minor"] = [account.risky_held, account.safe_held]
+        record["contribution_minor"] = contribution
+        record["contribution_split_minor"] = [split.risky, split.safe]
+    return record

@@ -16,6 +16,8 @@ from service.allocation import (
     TargetVolatility,
     account_from_request,
     recommend,
+    record_text,
+    render,
 )
 from service.store import LogBatch
 
@@ -29,10 +31,6 @@ def new_allocation_id() -> str:
 
 def utc_now_text() -> str:
     return datetime.now(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
-
-
-def canonical_json(doc: Any) -> bytes:
-    return orjson.dumps(doc, option=orjson.OPT_SORT_KEYS)
 
 
 def preference_of(p: PreferenceIn) -> tuple[Preference, dict[str, float | int]]:
@@ -52,7 +50,7 @@ def preference_of(p: PreferenceIn) -> tuple[Preference, dict[str, float | int]]:
 
 
 def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: str) -> dict[str, Any]:
-    """The recommendation document for one member (not yet logged)."""
+    """The allocation record for one member (not yet logged)."""
     view = state.mixes.view(plan.plan_id, body.mix_version)
     preference, preference_doc = preference_of(body.preference)
     holdings = None if body.holdings is None else {"risky": body.holdings.risky, "safe": body.holdings.safe}
@@ -71,14 +69,17 @@ def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: s
     )
 
 
-def log_batch(plan_id: str, mix_version: str, created_at: str, docs: list[dict[str, Any]]) -> tuple[LogBatch, list[bytes]]:
-    bodies = [canonical_json(d) for d in docs]
-    batch = LogBatch(
+def log_batch(plan_id: str, mix_version: str, created_at: str, records: list[dict[str, Any]]) -> LogBatch:
+    return LogBatch(
         plan_id=plan_id,
         mix_version=mix_version,
         created_at=created_at,
-        allocation_ids=[d["allocation_id"] for d in docs],
-        member_ids=[d["member_id"] for d in docs],
-        bodies=[b.decode() for b in bodies],
+        allocation_ids=[r["allocation_id"] for r in records],
+        member_ids=[r["member_id"] for r in records],
+        bodies=[record_text(r).decode() for r in records],
     )
-    return batch, bodies
+
+
+def rendered(state: AppState, plan_id: str, stored: str) -> dict[str, Any]:
+    record = orjson.loads(stored)
+    return render(record, state.mixes.view(plan_id, record["mix_version"]).codes)

@@ -5,17 +5,17 @@ from __future__ import annotations
 import asyncio
 from typing import Annotated
 
-import orjson
 from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
+from service.allocation import render
 from service.store import get_allocation, list_allocations
 
-from .allocating import answer, log_batch, utc_now_text
+from .allocating import answer, log_batch, rendered, utc_now_text
 from .bodies import parse_body, request_body_schema
 from .deps import CallerDep, StateDep
 from .errors import NotFound
-from .responses import AUTHED, problems, raw_json_response
+from .responses import AUTHED, json_response, problems
 from .schemas import AllocationIn, AllocationListOut, AllocationOut
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/allocations", tags=["allocations"])
@@ -32,12 +32,12 @@ async def create_allocation(plan_id: str, request: Request, caller: CallerDep, s
     plan = state.plan(plan_id)
     body = parse_body(AllocationIn, await request.body())
     created_at = utc_now_text()
-    doc = answer(state, plan, body, created_at=created_at)
-    batch, bodies = log_batch(plan_id, body.mix_version, created_at, [doc])
+    record = answer(state, plan, body, created_at=created_at)
     # The answer goes out only once its log row is committed: no unlogged recommendation exists.
-    await asyncio.wrap_future(state.db.writer.submit(batch))
+    await asyncio.wrap_future(state.db.writer.submit(log_batch(plan_id, body.mix_version, created_at, [record])))
     state.metrics.allocations.labels(plan_id).inc()
-    return raw_json_response(bodies[0], 201, headers={"Location": f"/v1/plans/{plan_id}/allocations/{doc['allocation_id']}"})
+    doc = render(record, state.mixes.view(plan_id, body.mix_version).codes)
+    return json_response(doc, 201, headers={"Location": f"/v1/plans/{plan_id}/allocations/{doc['allocation_id']}"})
 
 
 @router.get(
@@ -50,7 +50,7 @@ def read_allocation(plan_id: str, allocation_id: str, caller: CallerDep, state: 
         body = get_allocation(s, plan_id, allocation_id)
     if body is None:
         raise NotFound(f"allocation {allocation_id!r} not found in plan {plan_id!r}")
-    return raw_json_response(body.encode())
+    return json_response(rendered(state, plan_id, body))
 
 
 @router.get("", response_model=AllocationListOut, operation_id="list_allocations", responses=problems(*AUTHED))
@@ -65,8 +65,6 @@ def list_member_allocations(
     state.plan(plan_id)
     with state.db.reading() as s:
         bodies = list_allocations(s, plan_id, member_id, limit=limit)
-    # Stored bodies are spliced in as they are: what the member got is what is shown.
-    head = orjson.dumps({"plan_id": plan_id, "member_id": member_id, "count": len(bodies)})
-    payload = head[:-1] + b',"allocations":[' + ",".join(bodies).encode() + b"]}"
-    return raw_json_response(payload)
+    docs = [rendered(state, plan_id, b) for b in bodies]
+    return json_response({"plan_id": plan_id, "member_id": member_id, "count": len(docs), "allocations": docs})
 

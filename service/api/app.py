@@ -15,11 +15,11 @@ from starlette.types import ASGIApp, Receive, Scope, Send
 from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
 
-from . import allocations, audit, errors, mixes, operations, plans
+from . import allocations, audit, batch, errors, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
 from .errors import PROBLEM_MEDIA_TYPE, problem_response
 from .metrics import Metrics, MetricsMiddleware
-from .schemas import AllocationIn, Problem
+from .schemas import AllocationIn, BatchIn, Problem
 from .state import AppState
 
 EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
@@ -84,7 +84,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
-    for module in (plans, mixes, allocations, audit, operations):
+    for module in (plans, mixes, batch, allocations, audit, operations):
         app.include_router(module.router)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
@@ -113,7 +113,7 @@ def install_openapi(app: FastAPI) -> None:
         components = doc.setdefault("components", {}).setdefault("schemas", {})
         # Models of the bodies that hot routes read themselves (see bodies.py), and the problem shape.
         _, defs = models_json_schema(
-            [(Problem, "validation"), (AllocationIn, "validation")],
+            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation")],
             ref_template="#/components/schemas/{model}",
         )
         for name, schema in defs.get("$defs", {}).items():

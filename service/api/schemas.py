@@ -37,7 +37,9 @@ def _money(value: Any) -> str | int | float:
 
 Code = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$")]
 Identifier = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")]
-MemberId = Annotated[str, StringConstraints(min_length=1, max_length=128, pattern=r"^[^\x00-\x1f]+$")]
+# Printable ASCII without space, quote or backslash: ids go into log records unescaped.
+MEMBER_ID_PATTERN = r"^[!#-\[\]-~]{1,128}$"
+MemberId = Annotated[str, StringConstraints(min_length=1, max_length=128, pattern=MEMBER_ID_PATTERN)]
 Money = Annotated[
     str | int | float,
     PlainValidator(_money),
@@ -238,13 +240,21 @@ class HoldingsIn(Strict):
     safe: Money
 
 
-class AllocationIn(Strict):
+class MemberIn(Strict):
     member_id: MemberId
-    mix_version: Identifier
     amount: Money | None = None
     preference: PreferenceIn
     holdings: HoldingsIn | None = None
     contribution: Money | None = None
+
+
+class AllocationIn(MemberIn):
+    mix_version: Identifier
+
+
+class BatchIn(Strict):
+    mix_version: Identifier
+    members: Annotated[list[MemberIn], Field(min_length=1)]
 
 
 class MoneySplitOut(BaseModel):
@@ -275,6 +285,26 @@ class AllocationOut(BaseModel):
     contribution: str | None = None
     contribution_split: MoneySplitOut | None = None
     after_contribution: MoneySplitOut | None = None
+
+
+class BatchResultOut(BaseModel):
+    allocation_id: str
+    member_id: str
+    risky_fraction: float
+    unconstrained_risky_fraction: float | None
+    limited_by: str | None
+    amounts: MoneySplitOut
+    contribution_split: MoneySplitOut | None = None
+
+
+class BatchOut(BaseModel):
+    plan_id: str
+    mix_version: str
+    mix_content_hash: str
+    created_at: str
+    count: int
+    disclosures: list[str]
+    results: list[BatchResultOut]
 
 
 class AllocationListOut(BaseModel):

@@ -19,11 +19,14 @@ primal feasibility, dual signs, complementarity) to 1e-10.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
 import scipy.linalg
+from scipy.linalg.lapack import dpotrf as _potrf
+from scipy.linalg.lapack import dpotrs as _potrs
 
 from service.numerics.errors import InputError
 from service.numerics.max_return import FIXED, FREE, LOWER, UPPER, max_return_vertex
@@ -38,7 +41,7 @@ IndexArray = npt.NDArray[np.intp]
 KKT_TOLERANCE = 1e-10
 # Decision tolerances inside the iteration, relative to the scale of the numbers compared.
 _PRIMAL_RTOL = 1e-13
-_DUAL_RTOL = 1e-13
+_DUAL_RTOL = 1e-14
 # t below this fraction of sum|y| counts as "not attained by a fully invested portfolio".
 _T_RTOL = 1e-12
 
@@ -74,6 +77,18 @@ class BoxProblem:
         self.finite_hi = np.isfinite(upper)
         self.lo0 = np.where(self.finite_lo, lower, 0.0)
         self.hi0 = np.where(self.finite_hi, upper, 0.0)
+        self.e_scale = float(np.max(np.abs(excess))) if excess is not None else 0.0
+        self.diag_max = float(np.max(np.diag(covariance)))
+        # With finite lower bounds, sum|w| <= 1 + 2 sum(max(-lo, 0)) on the budget; with finite
+        # bounds max|w| <= the largest bound. Both scale the tolerances without a pass over w.
+        self.abs_sum_bound = 1.0 + 2.0 * float(np.maximum(-self.lo0, 0.0).sum()) if self.finite_lo.all() else math.inf
+        self.abs_max_bound = float(max(np.abs(self.lo0).max(), np.abs(self.hi0).max(), 1.0)) \
+            if (self.finite_lo.all() and self.finite_hi.all()) else math.inf
+        # Columns (e, 1, S c): S c starts at zero and is filled per solve.
+        self.base = np.zeros((self.n, 3))
+        if excess is not None:
+            self.base[:, 0] = excess
+        self.base[:, 1] = 1.0
 
     @property
     def tangency(self) -> bool:
@@ -182,31 +197,136 @@ class BoxProblem:
         return _PRIMAL_RTOL * y_scale, _DUAL_RTOL * max(g_scale, np.finfo(float).tiny)
 
 
+# Maps state + 1 (LOWER=-1, FREE=0, UPPER=1, FIXED=2) to the sign that makes a bound
+# multiplier non-negative: grad >= 0 at a lower bound, -grad >= 0 at an upper one.
+_SIDE = np.array([1.0, 0.0, -1.0, 0.0])
+# At most this many (or as many as are free, if more) bounded assets are released per
+# iteration: releasing every wrong-signed multiplier at once overshoots badly when many
+# assets start at a bound, and the next iterations then mostly undo it.
+_RELEASE_FLOOR = 16
+
+
+def _solve3(m00: float, m01: float, m02: float, m10: float, m11: float, m12: float,
+            m20: float, m21: float, m22: float) -> tuple[float, float, float] | None:
+    """Cramer's rule for M x = (1, 0, 0); None when M is numerically singular."""
+    c00 = m11 * m22 - m12 * m21
+    c10 = m12 * m20 - m10 * m22
+    c20 = m10 * m21 - m11 * m20
+    det = m00 * c00 + m01 * c10 + m02 * c20
+    size = max(abs(m00 * c00), abs(m01 * c10), abs(m02 * c20))
+    if not abs(det) > 1e-14 * size:
+        return None
+    return c00 / det, c10 / det, c20 / det
+
+
 def _pdas(problem: BoxProblem, state: StateArray, max_iter: int) -> tuple[Face, StateArray, int] | None:
-    """Primal-dual active set: move every primal violator and wrong-signed multiplier."""
+    """Primal-dual active set: move primal violators to their bound and release bounded
+    assets whose multiplier has the wrong sign (at most max(_RELEASE_FLOOR, free count)).
+
+    Works on index sets. ``base`` holds the columns (e, 1, S c) with c the held bound
+    values, so one row gather gives the right-hand sides and one product all the bounded
+    sums; S c is updated only for the assets that change. One Cholesky of the free block
+    per iteration, through LAPACK directly (the block is small, so call overhead is what
+    counts). The face is solved in homogenised form and rescaled to t = 1, so the returned
+    Face is in weight units. Returns None on a cycle, a singular face or t <= 0, for the
+    caller's primal fallback.
+    """
+    s = problem.s
+    tangency = problem.e is not None
+    lo, hi = problem.lo, problem.hi
+    state = state.copy()
+    c = problem.bound_values(state)
+    base = problem.base.copy()
+    held = np.flatnonzero(c)
+    if held.size:
+        base[:, 2] = c[held] @ s.take(held, axis=0)
+    side = _SIDE[state + 1]
+    c_abs = float(np.abs(c).sum())
+    e_scale, diag_max = problem.e_scale, problem.diag_max
+    finite_box = math.isfinite(problem.abs_max_bound)
+    tol_p_box = _PRIMAL_RTOL * problem.abs_max_bound
+    abs_sum_bound = problem.abs_sum_bound
     seen: set[bytes] = set()
     for iteration in range(1, max_iter + 1):
         key = state.tobytes()
         if key in seen:
             return None
         seen.add(key)
-        face = problem.solve_face(state)
-        if face is None:
+        free = (state == FREE).nonzero()[0]
+        f = free.size
+        if f == 0:
             return None
-        tol_p, tol_d = problem.tolerances(face)
-        low, high = problem.slacks(face.y, face.t)
-        free = state == FREE
-        to_lower = free & (low < -tol_p)
-        to_upper = free & (high < -tol_p) & ~to_lower
-        release = ((state == LOWER) & (face.grad < -tol_d)) | ((state == UPPER) & (face.grad > tol_d))
-        if not (to_lower.any() or to_upper.any() or release.any()):
-            return face, state, iteration
+        rows = s.take(free, axis=0)
+        # The free block is symmetric: its C-ordered copy read as Fortran is the same matrix.
+        chol, info = _potrf(rows[:, free].T, lower=1, clean=0, overwrite_a=1)
+        if info != 0:
+            return None
+        e_b, c_sum, q = (c @ base).tolist()
+        rhs = base.take(free, axis=0)
+        if tangency:
+            sol, info = _potrs(chol, rhs, lower=1)
+            if info != 0:
+                return None
+            (eu, ev, er), (_, one_v, one_r), (_, _, hr) = (rhs.T @ sol).tolist()
+            s_b = c_sum - 1.0
+            abt = _solve3(eu, ev, e_b - er, ev, one_v, s_b - one_r, er - e_b, one_r - s_b, q - hr)
+            if abt is None or not abt[2] > 0.0:
+                return None
+            a, b = abt[0] / abt[2], abt[1] / abt[2]
+            w_f = sol @ np.array([a, b, -1.0])
+        else:
+            sol, info = _potrs(chol, rhs[:, 1:], lower=1)
+            if info != 0:
+                return None
+            one_v, one_r = sol.sum(axis=0).tolist()
+            if not one_v > 0.0:
+                return None
+            a, b = 0.0, (1.0 - c_sum + one_r) / one_v
+            w_f = sol @ np.array([b, -1.0])
+        # Reduced gradient S w - a e - b 1 on every asset; base @ (-a, -b, 1) = S c - a e - b.
+        grad = w_f @ rows
+        grad += base @ np.array([-a, -b, 1.0])
+        if finite_box:
+            tol_p = tol_p_box
+            w_abs_sum = abs_sum_bound
+        else:
+            abs_w = np.abs(w_f)
+            tol_p = _PRIMAL_RTOL * max(1.0, float(abs_w.max()))
+            w_abs_sum = float(abs_w.sum()) + c_abs
+        tol_d = _DUAL_RTOL * (diag_max * w_abs_sum + abs(a) * e_scale + abs(b))
+        to_lower = w_f < lo.take(free) - tol_p
+        to_upper = (w_f > hi.take(free) + tol_p) & ~to_lower
+        signed = grad * side
+        release = (signed < -tol_d).nonzero()[0]
+        some_lower, some_upper = bool(to_lower.any()), bool(to_upper.any())
+        if not (release.size or some_lower or some_upper):
+            w = c.copy()
+            w[free] = w_f
+            return Face(y=w, t=1.0, alpha=a, beta=b, grad=grad), state, iteration
+        limit = max(_RELEASE_FLOOR, f)
+        if release.size > limit:
+            release = release[np.argpartition(signed[release], limit - 1)[:limit]]
         state = state.copy()
-        state[to_lower] = LOWER
-        state[to_upper] = UPPER
+        c_old = c
+        c = c.copy()
+        side = side.copy()
+        if some_lower:
+            down = free[to_lower]
+            state[down] = LOWER
+            c[down] = lo[down]
+            side[down] = 1.0
+        if some_upper:
+            up = free[to_upper]
+            state[up] = UPPER
+            c[up] = hi[up]
+            side[up] = -1.0
         state[release] = FREE
-        if not (state == FREE).any():
-            return None
+        c[release] = 0.0
+        side[release] = 0.0
+        changed = (c != c_old).nonzero()[0]
+        if changed.size:
+            base[:, 2] += (c[changed] - c_old[changed]) @ s.take(changed, axis=0)
+            c_abs = float(np.abs(c).sum())
     return None
 
 
@@ -232,15 +352,19 @@ def _primal(problem: BoxProblem, max_iter: int) -> tuple[Face, StateArray, int]:
             raise RuntimeError("active-set search reached a singular face")
         dy = face.y - y
         dt = face.t - t
-        low, high = problem.slacks(y, t)
-        d_low = np.where(problem.finite_lo, dy - problem.lo0 * dt, 0.0)
-        d_high = np.where(problem.finite_hi, problem.hi0 * dt - dy, 0.0)
         free = state == FREE
-        with np.errstate(divide="ignore", invalid="ignore"):
-            r_low = np.where(free & (d_low < 0.0), np.maximum(low, 0.0) / -d_low, math.inf)
-            r_high = np.where(free & (d_high < 0.0), np.maximum(high, 0.0) / -d_high, math.inf)
-        step_low, step_high = float(r_low.min()), float(r_high.min())
-        step = min(1.0, step_low, step_high)
+        step = 1.0
+        if np.count_nonzero(free) > 1:
+            # With one free asset the face is a single point: nothing can block.
+            low, high = problem.slacks(y, t)
+            d_low = np.where(problem.finite_lo, dy - problem.lo0 * dt, 0.0)
+            d_high = np.where(problem.finite_hi, problem.hi0 * dt - dy, 0.0)
+            # Directions at rounding level are not moves towards a bound.
+            d_tol = 1e-14 * max(float(np.max(np.abs(y))), abs(t), float(np.max(np.abs(face.y))), abs(face.t))
+            with np.errstate(divide="ignore", invalid="ignore"):
+                r_low = np.where(free & (d_low < -d_tol), np.maximum(low, 0.0) / -d_low, math.inf)
+                r_high = np.where(free & (d_high < -d_tol), np.maximum(high, 0.0) / -d_high, math.inf)
+            step = min(1.0, float(r_low.min()), float(r_high.min()))
         if step < 1.0:
             y = y + step * dy
             t = t + step * dt
@@ -269,50 +393,54 @@ def _primal(problem: BoxProblem, max_iter: int) -> tuple[Face, StateArray, int]:
 
 
 def tangency_kkt_residual(s: FloatArray, excess: FloatArray, lo: FloatArray, hi: FloatArray,
-                          w: FloatArray, state: StateArray, beta_hint: float) -> float:
+                          w: FloatArray, state: StateArray, beta_hint: float,
+                          sw: FloatArray | None = None) -> float:
     """Scale-free KKT residual of w as the maximum-Sharpe portfolio.
 
     Optimality of max (e'w)/sqrt(w'Sw) on {1'w = 1, lo <= w <= hi} reads
     S w - a e - b 1 = (bound multipliers) with a = w'Sw / e'w, multipliers >= 0 at lower
-    bounds and <= 0 at upper bounds, zero on free assets.
+    bounds and <= 0 at upper bounds, zero on free assets. ``sw`` (= S w) is computed
+    densely when not given.
     """
-    sw = s @ w
+    if sw is None:
+        sw = s @ w
     gain = float(excess @ w)
     if not gain > 0.0:
         return math.inf
     a = float(w @ sw) / gain
     partial = sw - a * excess
-    return _box_residual(s, partial, lo, hi, w, state, beta_hint,
+    return _box_residual(float(np.max(np.diag(s))), partial, lo, hi, w, state, beta_hint,
                          extra_scale=abs(a) * float(np.max(np.abs(excess))))
 
 
 def min_variance_kkt_residual(s: FloatArray, lo: FloatArray, hi: FloatArray, w: FloatArray,
-                              state: StateArray, beta_hint: float) -> float:
+                              state: StateArray, beta_hint: float, sw: FloatArray | None = None) -> float:
     """Scale-free KKT residual of w as the minimum-variance portfolio (S w - b 1 = multipliers)."""
-    return _box_residual(s, s @ w, lo, hi, w, state, beta_hint, extra_scale=0.0)
+    return _box_residual(float(np.max(np.diag(s))), s @ w if sw is None else sw, lo, hi, w, state,
+                         beta_hint, extra_scale=0.0)
 
 
-def _box_residual(s: FloatArray, partial: FloatArray, lo: FloatArray, hi: FloatArray, w: FloatArray,
+def _box_residual(diag_max: float, partial: FloatArray, lo: FloatArray, hi: FloatArray, w: FloatArray,
                   state: StateArray, beta_hint: float, extra_scale: float) -> float:
-    free = state == FREE
-    b = float(partial[free].mean()) if free.any() else beta_hint
+    free = np.flatnonzero(state == FREE)
+    b = float(partial.take(free).mean()) if free.size else beta_hint
     g = partial - b
+    abs_w = np.abs(w)
     # Measured against the size of the terms summed in S w (|S_ij| <= max diag for PSD S),
     # so the residual is a relative backward error and does not grow with conditioning.
-    scale = max(float(np.max(np.abs(partial))), float(np.max(np.diag(s))) * float(np.abs(w).sum()),
-                abs(b), extra_scale, np.finfo(float).tiny)
-    w_scale = max(1.0, float(np.max(np.abs(w))))
-    stationarity = float(np.max(np.abs(g[free]), initial=0.0)) / scale
-    below = np.where(np.isfinite(lo), lo - w, 0.0)
-    above = np.where(np.isfinite(hi), w - hi, 0.0)
-    primal = max(float(np.max(below, initial=0.0)), float(np.max(above, initial=0.0)), 0.0) / w_scale
-    budget = abs(float(w.sum()) - 1.0) / w_scale
-    at_lower, at_upper = state == LOWER, state == UPPER
-    dual = max(float(np.max(-g[at_lower], initial=0.0)), float(np.max(g[at_upper], initial=0.0)), 0.0) / scale
-    gap_lower = np.abs(np.where(at_lower, w - np.where(np.isfinite(lo), lo, w), 0.0))
-    gap_upper = np.abs(np.where(at_upper, np.where(np.isfinite(hi), hi, w) - w, 0.0))
-    complementarity = float(np.max((gap_lower + gap_upper) * np.abs(g), initial=0.0)) / (scale * w_scale)
-    return max(stationarity, primal, budget, dual, complementarity)
+    scale = max(float(np.abs(partial).max()), diag_max * float(abs_w.sum()), abs(b), extra_scale,
+                np.finfo(float).tiny)
+    w_scale = max(1.0, float(abs_w.max()))
+    stationarity = float(np.abs(g.take(free)).max()) / scale if free.size else 0.0
+    # Infinite bounds give -inf here, never NaN, since w is finite.
+    primal = max(float((lo - w).max()), float((w - hi).max()), abs(float(w.sum()) - 1.0), 0.0) / w_scale
+    signed = g * _SIDE[state + 1]
+    dual = max(float(-signed.min()), 0.0) / scale
+    bounded = (state == LOWER) | (state == UPPER)
+    bound = np.where(state == LOWER, lo, hi)
+    gap = np.where(bounded, np.abs(w - np.where(bounded, bound, w)), 0.0)
+    complementarity = float((gap * np.abs(g)).max()) / (scale * w_scale)
+    return max(stationarity, primal, dual, complementarity)
 
 
 @dataclass(frozen=True, eq=False)
@@ -322,9 +450,15 @@ class BoxSolution:
     kkt_residual: float
     iterations: int
     route: str  # "pdas" or "primal"
+    variance: float
 
 
-def _finish(problem: BoxProblem, face: Face, state: StateArray) -> tuple[FloatArray, float]:
+def _finish(problem: BoxProblem, face: Face, state: StateArray, sw: FloatArray | None) -> tuple[FloatArray, float, float]:
+    """Weights with bounded assets exactly on their bounds, their KKT residual and w'Sw.
+
+    ``sw`` is S w when the caller has it (the primal-dual iteration carries it in its
+    reduced gradient); otherwise it is computed afresh over the non-zero weights.
+    """
     if problem.e is not None:
         if not face.t > _T_RTOL * float(np.sum(np.abs(face.y))):
             raise InputError(
@@ -333,21 +467,26 @@ def _finish(problem: BoxProblem, face: Face, state: StateArray) -> tuple[FloatAr
                 f"by portfolios that are not fully invested (t = {face.t:.3g}); the risk-free rate must "
                 "lie below the return of the minimum-variance portfolio")
         w = face.y / face.t
-        w[state == LOWER] = problem.lo[state == LOWER]
-        w[state == UPPER] = problem.hi[state == UPPER]
-        w[state == FIXED] = problem.lo[state == FIXED]
-        res = tangency_kkt_residual(problem.s, problem.e, problem.lo, problem.hi, w, state, face.beta / face.t)
     else:
         w = face.y.copy()
-        w[state == LOWER] = problem.lo[state == LOWER]
-        w[state == UPPER] = problem.hi[state == UPPER]
-        w[state == FIXED] = problem.lo[state == FIXED]
-        res = min_variance_kkt_residual(problem.s, problem.lo, problem.hi, w, state, face.beta)
-    return w, res
+    bounded = state != FREE
+    w[bounded] = problem.bound_values(state)[bounded]
+    if sw is None:
+        support = np.flatnonzero(w)
+        sw = w[support] @ problem.s.take(support, axis=0)
+    variance = float(w @ sw)
+    if problem.e is not None:
+        res = tangency_kkt_residual(problem.s, problem.e, problem.lo, problem.hi, w, state,
+                                    face.beta / face.t, sw=sw)
+    else:
+        res = min_variance_kkt_residual(problem.s, problem.lo, problem.hi, w, state, face.beta, sw=sw)
+    return w, res, variance
 
 
-def solve_box_problem(problem: BoxProblem, start: StateArray) -> BoxSolution:
-    """Solve from a warm-start active set; primal active set if the fast iteration fails."""
+def solve_box_problem(problem: BoxProblem, start: StateArray,
+                      before_fallback: Callable[[], None] | None = None) -> BoxSolution:
+    """Solve from a warm-start active set; primal active set if the fast iteration fails
+    (``before_fallback`` runs first: the place for input checks only failures need)."""
     start = start.copy()
     start[problem.fixed] = FIXED
     if not (start == FREE).any():
@@ -356,11 +495,17 @@ def solve_box_problem(problem: BoxProblem, start: StateArray) -> BoxSolution:
     quick = _pdas(problem, start, max_iter=min(4 * problem.n + 10, 200))
     if quick is not None:
         face, state, iterations = quick
-        w, res = _finish(problem, face, state)
+        # The iteration's reduced gradient is S w - a e - b 1 in weight units.
+        sw = face.grad + face.beta
+        if problem.e is not None:
+            sw += face.alpha * problem.e
+        w, res, variance = _finish(problem, face, state, sw)
         if res <= KKT_TOLERANCE:
-            return BoxSolution(w, state, res, iterations, "pdas")
+            return BoxSolution(w, state, res, iterations, "pdas", variance)
+    if before_fallback is not None:
+        before_fallback()
     face, state, iterations = _primal(problem, max_iter=20 * problem.n + 100)
-    w, res = _finish(problem, face, state)
+    w, res, variance = _finish(problem, face, state, None)
     if res > KKT_TOLERANCE:
         raise RuntimeError(f"active-set solution failed its KKT check: residual {res:.3g} > {KKT_TOLERANCE:g}")
-    return BoxSolution(w, state, res, iterations, "primal")
+    return BoxSolution(w, state, res, iterations, "primal", variance)

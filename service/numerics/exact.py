@@ -26,14 +26,16 @@ FloatArray = npt.NDArray[np.float64]
 def only_feasible_weights(inputs: MixInputs) -> FloatArray | None:
     """The single feasible portfolio when the bounds leave no choice, else None."""
     lo, hi = inputs.lower, inputs.upper
-    tol = budget_tolerance(inputs.n)
     if inputs.n == 1:
         return np.ones(1)
-    if np.all(lo == hi):
+    if inputs.unconstrained:
+        return None
+    tol = budget_tolerance(inputs.n)
+    low_sum, high_sum = float(lo.sum()), float(hi.sum())
+    # An infinite bound makes its sum infinite, so these tests also mean "all finite".
+    if abs(low_sum - 1.0) <= tol or bool((lo == hi).all()):
         return lo.copy()
-    if np.all(np.isfinite(lo)) and abs(float(lo.sum()) - 1.0) <= tol:
-        return lo.copy()
-    if np.all(np.isfinite(hi)) and abs(float(hi.sum()) - 1.0) <= tol:
+    if abs(high_sum - 1.0) <= tol:
         return hi.copy()
     return None
 
@@ -72,11 +74,16 @@ def tangency(inputs: MixInputs) -> tuple[Portfolio, float]:
         residual = tangency_kkt_residual(inputs.covariance, excess, inputs.lower, inputs.upper, w, state, 0.0)
         _check_residual(residual, "closed-form tangency")
         return portfolio_from_weights(inputs, w, "closed_form"), residual
-    top = max_return_vertex(inputs.expected_returns, inputs.lower, inputs.upper)
-    _require_positive_excess(inputs, top.best)
     problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, excess)
-    solution = solve_box_problem(problem, tangency_start(inputs, excess))
-    return portfolio_from_weights(inputs, solution.weights, "active_set"), solution.kkt_residual
+
+    def check_some_portfolio_beats_rf() -> None:
+        # Only needed when the fast iteration fails: a verified answer has e'w > 0.
+        top = max_return_vertex(inputs.expected_returns, inputs.lower, inputs.upper)
+        _require_positive_excess(inputs, top.best)
+
+    solution = solve_box_problem(problem, tangency_start(inputs, excess), check_some_portfolio_beats_rf)
+    return (portfolio_from_weights(inputs, solution.weights, "active_set", solution.variance),
+            solution.kkt_residual)
 
 
 def min_variance(inputs: MixInputs) -> Portfolio:
@@ -92,7 +99,7 @@ def min_variance(inputs: MixInputs) -> Portfolio:
         return portfolio_from_weights(inputs, w, "closed_form")
     problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, None)
     solution = solve_box_problem(problem, min_variance_start(inputs))
-    return portfolio_from_weights(inputs, solution.weights, "active_set")
+    return portfolio_from_weights(inputs, solution.weights, "active_set", solution.variance)
 
 
 def _check_residual(residual: float, what: str) -> None:

@@ -54,21 +54,31 @@ class MixInputs:
     lower: FloatArray
     upper: FloatArray
 
+    def __post_init__(self) -> None:
+        # Derived once (O(n)) so every solve can branch without re-scanning the bounds.
+        lo, hi = self.lower, self.upper
+        object.__setattr__(self, "_volatilities", _frozen(np.sqrt(np.diag(self.covariance))))
+        object.__setattr__(self, "_unconstrained", bool(np.isneginf(lo).all() and np.isposinf(hi).all()))
+        object.__setattr__(self, "_bounds_finite", bool(np.isfinite(lo).all() and np.isfinite(hi).all()))
+
     @property
     def n(self) -> int:
         return len(self.codes)
 
     @property
     def volatilities(self) -> FloatArray:
-        return _frozen(np.sqrt(np.diag(self.covariance)))
-
-    @property
-    def excess_returns(self) -> FloatArray:
-        return _frozen(self.expected_returns - self.risk_free_rate)
+        out: FloatArray = self._volatilities  # type: ignore[attr-defined]
+        return out
 
     @property
     def unconstrained(self) -> bool:
-        return bool(np.all(np.isneginf(self.lower)) and np.all(np.isposinf(self.upper)))
+        """True when every bound is infinite (the closed forms apply)."""
+        return bool(self._unconstrained)  # type: ignore[attr-defined]
+
+    @property
+    def bounds_finite(self) -> bool:
+        """True when every bound is finite (the feasible set is a bounded box slice)."""
+        return bool(self._bounds_finite)  # type: ignore[attr-defined]
 
 
 def _finite_vector(values: Sequence[float], n: int, count_field: str, item_field: str,

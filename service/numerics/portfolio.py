@@ -30,11 +30,15 @@ class Portfolio:
     method: str
 
 
-def portfolio_from_weights(inputs: MixInputs, weights: FloatArray, method: str) -> Portfolio:
+def portfolio_from_weights(inputs: MixInputs, weights: FloatArray, method: str,
+                           variance: float | None = None) -> Portfolio:
+    """Statistics of ``weights``; ``variance`` may be passed when the solver already has w'Sw."""
     w = np.array(weights, dtype=np.float64, copy=True)
     w.setflags(write=False)
     mean = float(inputs.expected_returns @ w)
-    variance = max(float(w @ inputs.covariance @ w), 0.0)
+    if variance is None:
+        variance = float(w @ inputs.covariance @ w)
+    variance = max(variance, 0.0)
     vol = math.sqrt(variance)
     sharpe = (mean - inputs.risk_free_rate) / vol if vol > 0.0 else math.nan
     return Portfolio(weights=w, expected_return=mean, volatility=vol, sharpe_ratio=sharpe, method=method)

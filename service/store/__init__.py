@@ -8,7 +8,15 @@ from service.store.chain import GENESIS_HASH, verify_chain
 from service.store.database import Database
 from service.store.errors import Conflict
 from service.store.key_secrets import secret_hash, secret_matches
-from service.store.records import BadRow, ChainReport, KeyRecord, LogBatch, MixRecord, PlanRecord
+from service.store.records import (
+    BadRow,
+    ChainReport,
+    KeyRecord,
+    LogBatch,
+    LogStream,
+    MixRecord,
+    PlanRecord,
+)
 from service.store.repository import (
     get_allocation,
     get_key,
@@ -32,6 +40,7 @@ __all__ = [
     "Database",
     "KeyRecord",
     "LogBatch",
+    "LogStream",
     "MixRecord",
     "PlanRecord",
     "get_allocation",

@@ -10,7 +10,7 @@ one way only: text cannot be moved between fields without changing the hash.
 from __future__ import annotations
 
 import hashlib
-from typing import TYPE_CHECKING, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 from sqlalchemy import select
 from sqlalchemy.engine import Row
@@ -62,41 +62,56 @@ def verify_chain(db_or_session: Session | _Readable, plan_id: str) -> ChainRepor
 
 
 def _verify(session: Session, plan_id: str) -> ChainReport:
-    head = session.execute(
-        select(ChainHead.last_seq, ChainHead.last_hash).where(ChainHead.plan_id == plan_id)
+    # Core rows through the session's connection: the ORM's per-row work would cost
+    # more than the hashing on a chain of a few hundred thousand rows.
+    connection = session.connection()
+    heads, log = ChainHead.__table__.c, Allocation.__table__.c
+    head = connection.execute(
+        select(heads.last_seq, heads.last_hash).where(heads.plan_id == plan_id)
     ).one_or_none()
-    head_seq, head_hash = (head.last_seq, head.last_hash) if head is not None else (0, GENESIS_HASH)
+    head_seq, head_hash = (head[0], head[1]) if head is not None else (0, GENESIS_HASH)
 
-    rows = session.execute(
+    rows = connection.execution_options(yield_per=_STREAM_CHUNK).execute(
         select(
-            Allocation.seq,
-            Allocation.allocation_id,
-            Allocation.member_id,
-            Allocation.mix_version,
-            Allocation.created_at,
-            Allocation.body,
-            Allocation.prev_hash,
-            Allocation.row_hash,
+            log.seq,
+            log.allocation_id,
+            log.member_id,
+            log.mix_version,
+            log.created_at,
+            log.body,
+            log.prev_hash,
+            log.row_hash,
         )
-        .where(Allocation.plan_id == plan_id)
-        .order_by(Allocation.seq, Allocation.id)
-        .execution_options(yield_per=_STREAM_CHUNK)
+        .where(log.plan_id == plan_id)
+        .order_by(log.seq, log.id)
     )
     expected_seq = 1
     prev_hash = GENESIS_HASH
     last_allocation_id: str | None = None
     checked = 0
-    for row in rows:
-        checked += 1
-        reason = _fault(row, plan_id, expected_seq, prev_hash, head_seq)
-        if reason is not None:
-            rows.close()
-            return ChainReport(
-                plan_id, False, checked, prev_hash, BadRow(row.seq, row.allocation_id, reason)
+    with rows:
+        for link in rows:
+            seq, allocation_id, member_id, mix_version, created_at, body, stored_prev, row_hash = (
+                link
             )
-        prev_hash = row.row_hash
-        last_allocation_id = row.allocation_id
-        expected_seq += 1
+            checked += 1
+            if not (
+                seq == expected_seq
+                and stored_prev == prev_hash
+                and seq <= head_seq
+                and link_hash(
+                    prev_hash, plan_id, seq, allocation_id, member_id, mix_version, created_at,
+                    body,
+                )
+                == row_hash
+            ):
+                reason = _fault(link, plan_id, expected_seq, prev_hash, head_seq)
+                return ChainReport(
+                    plan_id, False, checked, prev_hash, BadRow(seq, allocation_id, reason)
+                )
+            prev_hash = row_hash
+            last_allocation_id = allocation_id
+            expected_seq += 1
 
     last_seq = expected_seq - 1
     bad: BadRow | None = None
@@ -118,39 +133,24 @@ def _verify(session: Session, plan_id: str) -> ChainReport:
 
 
 def _fault(
-    row: Row[tuple[int, str, str, str, str, str, str, str]],
-    plan_id: str,
-    expected_seq: int,
-    prev_hash: str,
-    head_seq: int,
-) -> str | None:
-    seq = row.seq
+    link: Row[Any], plan_id: str, expected_seq: int, prev_hash: str, head_seq: int
+) -> str:
+    """Why ``link`` failed; the checks in the order that names the likeliest cause."""
+    seq, allocation_id, member_id, mix_version, created_at, body, stored_prev, row_hash = link
     if seq < expected_seq:
         return f"seq {seq} duplicated or out of order (expected {expected_seq})"
     if seq > expected_seq:
         return f"seq gap: expected {expected_seq}, found {seq} (row removed)"
-    if row.prev_hash != prev_hash:
+    if stored_prev != prev_hash:
         return (
             f"prev_hash does not match the hash of seq {seq - 1} "
             "(row inserted, removed or reordered)"
         )
-    text = SEPARATOR.join(
-        (
-            row.prev_hash,
-            plan_id,
-            str(seq),
-            row.allocation_id,
-            row.member_id,
-            row.mix_version,
-            row.created_at,
-            row.body,
-        )
+    recomputed = link_hash(
+        stored_prev, plan_id, seq, allocation_id, member_id, mix_version, created_at, body
     )
-    if hashlib.sha256(text.encode()).hexdigest() != row.row_hash:
+    if recomputed != row_hash:
         return "row_hash does not match the row's content (row edited)"
-    if seq > head_seq:
-        return (
-            f"seq {seq} is beyond the chain head (last_seq {head_seq}): "
-            "row added outside the writer"
-        )
-    return None
+    return (
+        f"seq {seq} is beyond the chain head (last_seq {head_seq}): row added outside the writer"
+    )

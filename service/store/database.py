@@ -31,11 +31,18 @@ _SQLITE_PRAGMAS = (
     "PRAGMA synchronous=NORMAL",
     "PRAGMA busy_timeout=5000",
     "PRAGMA foreign_keys=ON",
+    # Shrink the WAL file back after a very large batch has been checkpointed.
+    "PRAGMA journal_size_limit=67108864",
 )
 
 
-def make_engine(url: str, *, pool_size: int = 10, max_overflow: int = 20) -> Engine:
-    """An Engine for ``url`` with mixline's SQLite transaction handling installed."""
+def make_engine(
+    url: str, *, pool_size: int = 10, max_overflow: int = 20, sqlite_query_only: bool = False
+) -> Engine:
+    """An Engine for ``url`` with mixline's SQLite transaction handling installed.
+
+    ``sqlite_query_only`` makes every connection of the engine refuse writes.
+    """
     parsed = make_url(url)
     backend = parsed.get_backend_name()
     options: dict[str, Any] = {"pool_size": pool_size, "max_overflow": max_overflow}
@@ -48,10 +55,12 @@ def make_engine(url: str, *, pool_size: int = 10, max_overflow: int = 20) -> Eng
         if "connect_timeout" not in parsed.query:
             options["connect_args"] = {"connect_timeout": 5}
     else:
-        raise ValueError(f"unsupported database {backend!r}: use sqlite:/// or postgresql+psycopg://")
+        raise ValueError(
+            f"unsupported database {backend!r}: use sqlite:/// or postgresql+psycopg://"
+        )
     engine = create_engine(url, **options)
     if backend == "sqlite":
-        _install_sqlite_hooks(engine)
+        _install_sqlite_hooks(engine, query_only=sqlite_query_only)
     return engine
 
 
@@ -62,12 +71,14 @@ def write_bind(engine: Engine) -> Engine:
     return engine
 
 
-def _install_sqlite_hooks(engine: Engine) -> None:
+def _install_sqlite_hooks(engine: Engine, *, query_only: bool) -> None:
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_connection: Any, connection_record: Any) -> None:
         dbapi_connection.isolation_level = None
         for pragma in _SQLITE_PRAGMAS:
             dbapi_connection.execute(pragma)
+        if query_only:
+            dbapi_connection.execute("PRAGMA query_only=ON")
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Any) -> None:
@@ -82,8 +93,13 @@ class Database:
         self.engine = make_engine(url, pool_size=pool_size, max_overflow=max_overflow)
         self.dialect: str = self.engine.dialect.name
         self._write_bind = write_bind(self.engine)
+        self._read_bind: Engine
         if self.dialect == "sqlite":
-            self._read_bind = self.engine
+            # A pool of its own whose connections refuse writes, as PostgreSQL's
+            # read-only transactions do, so a write in reading() fails on both.
+            self._read_bind = make_engine(
+                url, pool_size=pool_size, max_overflow=max_overflow, sqlite_query_only=True
+            )
         else:
             self._read_bind = self.engine.execution_options(
                 isolation_level="REPEATABLE READ", postgresql_readonly=True
@@ -114,7 +130,7 @@ class Database:
 
     @contextmanager
     def reading(self) -> Iterator[Session]:
-        """A session for read-only work; whatever it did is rolled back at the end."""
+        """A session for read-only work on one consistent snapshot; writes are refused."""
         with Session(self._read_bind, expire_on_commit=False) as session:
             yield session
 
@@ -131,4 +147,6 @@ class Database:
     def close(self) -> None:
         """Stop the writer after it has written everything submitted, then close all connections."""
         self.writer.close()
+        if self.dialect == "sqlite":
+            self._read_bind.dispose()
         self.engine.dispose()

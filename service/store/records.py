@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import queue
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
@@ -51,6 +52,53 @@ class LogBatch:
     allocation_ids: Sequence[str]
     member_ids: Sequence[str]
     bodies: Sequence[str]
+
+    def triples(self) -> Iterator[tuple[str, str, str]]:
+        return zip(self.allocation_ids, self.member_ids, self.bodies, strict=True)
+
+
+class LogStream:
+    """A batch whose rows arrive in chunks from another thread while the writer inserts them.
+
+    The producer calls ``put`` until ``size`` rows were given, or ``fail`` to abandon the batch
+    (the writer then rolls back: nothing of it is logged). The writer gives each stream a
+    transaction of its own. Chunks are checked for the field separator as they arrive.
+    """
+
+    def __init__(self, plan_id: str, mix_version: str, created_at: str, size: int, *, wait_seconds: float = 300.0) -> None:
+        self.plan_id = plan_id
+        self.mix_version = mix_version
+        self.created_at = created_at
+        self.size = size
+        self._wait = wait_seconds
+        self._chunks: queue.SimpleQueue[Any] = queue.SimpleQueue()
+
+    def put(self, allocation_ids: Sequence[str], member_ids: Sequence[str], bodies: Sequence[str]) -> None:
+        if not len(allocation_ids) == len(member_ids) == len(bodies):
+            raise ValueError("a chunk's allocation_ids, member_ids and bodies must have one length")
+        self._chunks.put((allocation_ids, member_ids, bodies))
+
+    def fail(self, error: BaseException) -> None:
+        self._chunks.put(error)
+
+    def triples(self) -> Iterator[tuple[str, str, str]]:
+        seen = 0
+        while seen < self.size:
+            try:
+                chunk = self._chunks.get(timeout=self._wait)
+            except queue.Empty:
+                raise TimeoutError(f"no rows for {self._wait} s; the batch is abandoned") from None
+            if isinstance(chunk, BaseException):
+                raise chunk
+            ids, members, bodies = chunk
+            for name, values in (("allocation_ids", ids), ("member_ids", members), ("bodies", bodies)):
+                # One join per chunk finds a separator (or a non-string) in C, not row by row.
+                if "\x1f" in "".join(values):
+                    raise ValueError(f"stream {name} contain the U+001F separator")
+            seen += len(ids)
+            if seen > self.size:
+                raise ValueError(f"stream announced {self.size} rows and sent {seen}")
+            yield from zip(ids, members, bodies, strict=True)
 
 
 @dataclass(frozen=True)

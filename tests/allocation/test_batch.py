@@ -113,3 +113,48 @@ def test_batch_refusal_names_the_member(kind: int, value: float, conf: float, fi
     with pytest.raises(BatchError) as info:
         allocate(batch, AllocationLine(0.03, 0.07, 0.15), policy, np.array([0.5, 0.5]))
     assert info.value.index == 37 and info.value.field == f"members[37].{field}"
+
+
+@pytest.mark.parametrize(("leverage", "routed"), [(False, False), (True, True)])
+def test_batch_record_text_is_the_single_record_text(leverage: bool, routed: bool) -> None:
+    """Byte equality with records.record_text of the dict the single path builds from the same numbers."""
+    from service.allocation import RECORD_FORM, record_text
+    from service.allocation.batch import LIMIT_NAMES
+    from service.allocation.batch_records import BatchContext, money_texts, preference_texts, record_texts
+    from service.allocation.disclosures import DISCLOSURES_VERSION
+    from service.allocation.money import format_units
+
+    rng = np.random.default_rng(99)
+    policy = build_policy(max_risky_fraction=1.8 if leverage else 1.0, borrowing_rate=0.045 if leverage else None, risk_score_table=TABLE)
+    line = AllocationLine(0.03, 0.075, 0.14, borrowing_rate=0.045 if leverage else None)
+    weights = rng.dirichlet(np.ones(5))
+    batch = random_batch(rng, 300, routed=routed)
+    result = allocate(batch, line, policy, weights)
+    ctx = BatchContext("plan-x", "2026-q4", "ab" * 32, "2026-12-01T00:00:00.000001Z", "USD")
+    ids = [f"al_{i:032x}" for i in range(batch.size)]
+    members = [f"m-{i}" for i in range(batch.size)]
+    texts = record_texts(ctx, ids, members, batch, result)
+    prefs = preference_texts(batch)
+    for i in range(batch.size):
+        y = float(result.risky_fraction[i])
+        u = float(result.unconstrained[i])
+        record = {
+            "form": RECORD_FORM, "allocation_id": ids[i], "plan_id": ctx.plan_id, "member_id": members[i],
+            "mix_version": ctx.mix_version, "mix_content_hash": ctx.mix_content_hash, "created_at": ctx.created_at,
+            "currency": "USD", "preference": __import__("orjson").loads(prefs[i]), "risky_fraction": y,
+            "unconstrained_risky_fraction": None if np.isnan(u) else u, "limited_by": LIMIT_NAMES[result.limited[i]],
+            "expected_return": float(result.expected_return[i]), "volatility": float(result.volatility[i]),
+            "amount_minor": int(batch.total[i]), "split_minor": [int(result.risky[i]), int(result.safe[i])],
+            "by_asset_minor": result.by_asset[i].tolist(), "disclosures_version": DISCLOSURES_VERSION,
+        }
+        if routed:
+            assert batch.risky_held is not None and batch.contribution is not None and result.to_risky is not None and result.to_safe is not None
+            held = int(batch.risky_held[i])
+            record["holdings_minor"] = [held, int(batch.total[i]) - int(batch.contribution[i]) - held]
+            record["contribution_minor"] = int(batch.contribution[i])
+            record["contribution_split_minor"] = [int(result.to_risky[i]), int(result.to_safe[i])]
+        assert texts[i] == record_text(record).decode()
+    units = np.array([0, 5, -5, 123456789, -100, 99])
+    assert money_texts(units, "USD") == [format_units(int(u), "USD") for u in units]
+    assert money_texts(units, "JPY") == [format_units(int(u), "JPY") for u in units]
+    assert money_texts(units, "KWD") == [format_units(int(u), "KWD") for u in units]

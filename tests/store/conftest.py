@@ -5,8 +5,11 @@ from __future__ import annotations
 import secrets
 from collections.abc import Callable
 
+from typing import Any
+
 import orjson
 import pytest
+from sqlalchemy import text
 
 from service.store import Database, LogBatch, insert_plan
 
@@ -29,6 +32,20 @@ def allocation_body(plan_id: str, allocation_id: str, member_id: str) -> str:
         },
         option=orjson.OPT_SORT_KEYS,
     ).decode()
+
+
+def logged_rows(database: Database, plan_id: str) -> list[Any]:
+    """The plan's log rows as stored, in seq order, read with plain SQL."""
+    with database.reading() as s:
+        return list(
+            s.execute(
+                text(
+                    "SELECT seq, allocation_id, member_id, mix_version, created_at, body, "
+                    "prev_hash, row_hash FROM allocations WHERE plan_id = :p ORDER BY seq"
+                ),
+                {"p": plan_id},
+            )
+        )
 
 
 @pytest.fixture

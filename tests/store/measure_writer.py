@@ -17,6 +17,7 @@ import statistics
 import tempfile
 import threading
 import time
+import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -96,7 +97,7 @@ def concurrent_singles(db: Database, threads: int, per_thread: int) -> None:
     def client(t: int) -> None:
         barrier.wait()
         for i in range(per_thread):
-            allocation_id = f"{plan_id}-{t}-{i}"
+            allocation_id = str(uuid.uuid4())
             batch = LogBatch(plan_id, MIX_VERSION, now_text(), [allocation_id], [f"m{t}"],
                              [body(plan_id, allocation_id, f"m{t}")])
             started = time.perf_counter()
@@ -122,7 +123,7 @@ def concurrent_singles(db: Database, threads: int, per_thread: int) -> None:
 
 def one_big_batch(db: Database, rows: int) -> None:
     plan_id = new_plan(db)
-    ids = [f"{plan_id}-{i:07d}" for i in range(rows)]
+    ids = [str(uuid.uuid4()) for _ in range(rows)]  # random, like the API's ids
     members = [f"m{i:07d}" for i in range(rows)]
     bodies = [body(plan_id, a, m) for a, m in zip(ids, members)]
     mean_body = sum(map(len, bodies)) / rows

@@ -9,23 +9,16 @@ from typing import Any
 import pytest
 from sqlalchemy import text
 
-from service.store import GENESIS_HASH, Database, verify_chain
-from tests.store.conftest import CREATED_AT, MIX_VERSION, AppendRows, allocation_body
+from service.store import GENESIS_HASH, Database, insert_plan, verify_chain
+from tests.store.conftest import (
+    CREATED_AT,
+    MIX_VERSION,
+    AppendRows,
+    allocation_body,
+    logged_rows,
+)
 
 ROWS = 6
-
-
-def rows_of(database: Database, plan_id: str) -> list[Any]:
-    with database.reading() as s:
-        return list(
-            s.execute(
-                text(
-                    "SELECT seq, allocation_id, member_id, mix_version, created_at, body, "
-                    "prev_hash, row_hash FROM allocations WHERE plan_id = :p ORDER BY seq"
-                ),
-                {"p": plan_id},
-            )
-        )
 
 
 def tamper(database: Database, *statements: tuple[str, dict[str, Any]]) -> None:
@@ -45,7 +38,7 @@ def reference_hash(prev: str, plan_id: str, seq: int, allocation_id: str, member
 def chain(database: Database, plan_id: str, append_rows: AppendRows) -> list[Any]:
     append_rows(plan_id, 2)
     append_rows(plan_id, ROWS - 2)
-    return rows_of(database, plan_id)
+    return logged_rows(database, plan_id)
 
 
 def test_intact_chain_verifies(database: Database, plan_id: str, chain: list[Any]) -> None:
@@ -79,16 +72,14 @@ def test_empty_chain_is_ok(database: Database, plan_id: str) -> None:
 def test_chains_of_two_plans_are_independent(
     database: Database, plan_id: str, append_rows: AppendRows, new_plan_id: str
 ) -> None:
-    from service.store import insert_plan
-
     other = new_plan_id + "-b"
     with database.writing() as s:
         insert_plan(s, plan_id=other, name="Other", currency="GBP", policy={})
     append_rows(plan_id, 3)
     append_rows(other, 2)
     append_rows(plan_id, 1)
-    assert [r.seq for r in rows_of(database, plan_id)] == [1, 2, 3, 4]
-    assert [r.seq for r in rows_of(database, other)] == [1, 2]
+    assert [r.seq for r in logged_rows(database, plan_id)] == [1, 2, 3, 4]
+    assert [r.seq for r in logged_rows(database, other)] == [1, 2]
     assert verify_chain(database, plan_id).ok and verify_chain(database, other).ok
 
 
@@ -128,8 +119,10 @@ def test_deleted_middle_row_with_renumbering(
     tamper(
         database,
         ("DELETE FROM allocations WHERE allocation_id = :a", {"a": chain[2].allocation_id}),
-        ("UPDATE allocations SET seq = seq + 1000 WHERE plan_id = :p AND seq > 3", {"p": plan_id}),
-        ("UPDATE allocations SET seq = seq - 1001 WHERE plan_id = :p AND seq > 1000", {"p": plan_id}),
+        ("UPDATE allocations SET seq = seq + 1000 WHERE plan_id = :p AND seq > 3",
+         {"p": plan_id}),
+        ("UPDATE allocations SET seq = seq - 1001 WHERE plan_id = :p AND seq > 1000",
+         {"p": plan_id}),
     )
     bad = verify_chain(database, plan_id).first_bad
     assert bad is not None
@@ -177,8 +170,10 @@ def test_forged_row_inserted_in_the_middle(
                               CREATED_AT, body)
     tamper(
         database,
-        ("UPDATE allocations SET seq = seq + 1000 WHERE plan_id = :p AND seq >= 3", {"p": plan_id}),
-        ("UPDATE allocations SET seq = seq - 999 WHERE plan_id = :p AND seq > 1000", {"p": plan_id}),
+        ("UPDATE allocations SET seq = seq + 1000 WHERE plan_id = :p AND seq >= 3",
+         {"p": plan_id}),
+        ("UPDATE allocations SET seq = seq - 999 WHERE plan_id = :p AND seq > 1000",
+         {"p": plan_id}),
         ("INSERT INTO allocations (plan_id, seq, allocation_id, member_id, mix_version, "
          "created_at, body, prev_hash, row_hash) VALUES (:p, 3, :a, 'm1', :v, :c, :b, :prev, :h)",
          {"p": plan_id, "a": forged_id, "v": MIX_VERSION, "c": CREATED_AT, "b": body,

@@ -8,6 +8,7 @@ from datetime import UTC, datetime, timedelta
 import orjson
 import pytest
 from sqlalchemy import text
+from sqlalchemy.exc import DBAPIError
 
 import service.store as store
 from service.store import (
@@ -36,7 +37,7 @@ SOLVED = {"tangency": {"weights": {"GLEQ": 1.0}, "sharpe_ratio": 0.31}}
 def test_public_names_are_exactly_the_interface() -> None:
     assert sorted(store.__all__) == sorted(
         [
-            "GENESIS_HASH", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database",
+            "GENESIS_HASH", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
             "list_allocations", "secret_hash", "secret_matches", "set_active_version",
@@ -96,6 +97,13 @@ def test_writing_rolls_back_on_error(database: Database, new_plan_id: str) -> No
         with database.writing() as s:
             insert_plan(s, plan_id=new_plan_id, name="P", currency="EUR", policy={})
             raise RuntimeError("abandon")
+    with database.reading() as s:
+        assert get_plan(s, new_plan_id) is None
+
+
+def test_reading_refuses_writes(database: Database, new_plan_id: str) -> None:
+    with database.reading() as s, pytest.raises(DBAPIError, match="read"):
+        insert_plan(s, plan_id=new_plan_id, name="P", currency="EUR", policy={})
     with database.reading() as s:
         assert get_plan(s, new_plan_id) is None
 

@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import threading
+import time
 from concurrent.futures import Future, ThreadPoolExecutor, wait
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -11,7 +13,13 @@ from sqlalchemy import text
 from sqlalchemy.exc import IntegrityError
 
 from service.store import ChainWriter, Database, LogBatch, verify_chain
-from tests.store.conftest import CREATED_AT, MIX_VERSION, AppendRows, allocation_body
+from tests.store.conftest import (
+    CREATED_AT,
+    MIX_VERSION,
+    AppendRows,
+    allocation_body,
+    logged_rows,
+)
 
 
 def batch(plan_id: str, allocation_ids: list[str], member_id: str = "m-ana") -> LogBatch:
@@ -26,14 +34,7 @@ def batch(plan_id: str, allocation_ids: list[str], member_id: str = "m-ana") -> 
 
 
 def logged_ids(database: Database, plan_id: str) -> list[tuple[int, str]]:
-    with database.reading() as s:
-        return [
-            (row.seq, row.allocation_id)
-            for row in s.execute(
-                text("SELECT seq, allocation_id FROM allocations WHERE plan_id = :p ORDER BY seq"),
-                {"p": plan_id},
-            )
-        ]
+    return [(row.seq, row.allocation_id) for row in logged_rows(database, plan_id)]
 
 
 def test_sixteen_threads_of_single_appends(database: Database, plan_id: str) -> None:
@@ -188,3 +189,17 @@ def test_writer_survives_a_lost_connection(
     append_rows(plan_id, 3)
     assert [seq for seq, _ in logged_ids(database, plan_id)] == [1, 2, 3, 4, 5]
     assert verify_chain(database, plan_id).ok
+
+
+def test_sqlite_wal_is_checkpointed_in_the_background(database: Database, plan_id: str) -> None:
+    if database.dialect != "sqlite":
+        pytest.skip("SQLite's write-ahead log only")
+    path = Path(str(database.engine.url.database))
+    before = path.stat().st_size
+    database.writer.append(batch(plan_id, [f"{plan_id}-{i}" for i in range(3_000)]))
+    # The writer commits to the WAL only; the main file grows once a checkpoint copies
+    # the pages over, which here can only be the background checkpointer's doing.
+    deadline = time.monotonic() + 5
+    while path.stat().st_size == before and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert path.stat().st_size > before

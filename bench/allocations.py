@@ -1,0 +1,306 @@
+"""Benchmark: logged allocations over HTTP, each figure beside a floor measured in the same run.
+
+    .venv/bin/python bench/allocations.py [--members 280000] [--seconds 10] [--postgres URL] [--quick]
+
+Starts `mixline serve` as its own process on a fresh SQLite file (and, with --postgres, on a
+fresh PostgreSQL database), seeds an invented plan, mix and keys over HTTP, then measures:
+
+1. Batch: one POST .../allocations/batch with N members (default 280,000), end to end over
+   loopback (request sent, every member computed and logged, answer received). Floor, same run:
+   orjson parsing of the same request body plus a raw bulk insert (executemany / COPY in one
+   transaction, no hashing, no application code) of the very rows the service logged. Also the
+   server process's peak resident memory (VmHWM from /proc). Targets: <= 2.0 s on SQLite, within
+   1.5x of the floor, peak memory < 1.5 GB.
+2. Single allocations at 16 concurrent connections with wrk (Debian package `wrk`) for a fixed
+   time, next to wrk on GET /livez (a trivial endpoint) as the floor. Targets: >= 2,500 req/s and
+   p99 <= 15 ms. Requests carry no Idempotency-Key; a second run with a fresh key per request is
+   reported beside it.
+
+Every loop here is bounded in count and time and talks only to 127.0.0.1.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import random
+import re
+import shutil
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+import urllib.request
+from pathlib import Path
+from typing import Any
+
+import orjson
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from service.demo import DEMO_MIX  # noqa: E402
+
+OPERATOR = "bench-operator-key-0123456789abcdefghijklmnop"
+PLAN = "bench-plan"
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def call(base: str, method: str, path: str, key: str, body: Any = None, timeout: float = 600) -> tuple[int, bytes]:
+    data = body if isinstance(body, bytes) else (None if body is None else orjson.dumps(body))
+    req = urllib.request.Request(base + path, data=data, method=method)
+    req.add_header("Authorization", f"Bearer {key}")
+    req.add_header("Content-Type", "application/json")
+    try:
+        with urllib.request.urlopen(req, timeout=timeout) as r:
+            return r.status, r.read()
+    except urllib.error.HTTPError as e:
+        return e.code, e.read()
+
+
+class Server:
+    def __init__(self, database_url: str, workdir: Path) -> None:
+        self.port = free_port()
+        self.base = f"http://127.0.0.1:{self.port}"
+        env = os.environ | {
+            "MIXLINE_DATABASE_URL": database_url,
+            "MIXLINE_BOOTSTRAP_OPERATOR_KEY": OPERATOR,
+        }
+        self.log = open(workdir / f"server-{self.port}.log", "w")
+        self.proc = subprocess.Popen(
+            [str(ROOT / ".venv/bin/mixline"), "serve", "--port", str(self.port)],
+            cwd=workdir, env=env, stdout=self.log, stderr=subprocess.STDOUT,
+        )
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:
+            try:
+                with urllib.request.urlopen(self.base + "/readyz", timeout=2) as r:
+                    if r.status == 200:
+                        return
+            except OSError:
+                time.sleep(0.2)
+        raise RuntimeError("server did not become ready; see " + self.log.name)
+
+    def peak_rss_mb(self) -> float:
+        status = Path(f"/proc/{self.proc.pid}/status").read_text()
+        kb = int(re.search(r"VmHWM:\s+(\d+) kB", status).group(1))  # type: ignore[union-attr]
+        return kb / 1024
+
+    def stop(self) -> None:
+        self.proc.terminate()
+        try:
+            self.proc.wait(20)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+        self.log.close()
+
+
+def seed(server: Server) -> dict[str, str]:
+    status, body = call(server.base, "POST", "/v1/plans", OPERATOR,
+                        {"plan_id": PLAN, "name": "Bench plan", "currency": "USD",
+                         "policy": {"risk_score_table": {"1": 10.0, "2": 6.0, "3": 3.0}}})
+    assert status == 201, body
+    keys = {}
+    for role in ("committee", "portal"):
+        status, body = call(server.base, "POST", f"/v1/plans/{PLAN}/keys", OPERATOR, {"role": role})
+        assert status == 201, body
+        keys[role] = json.loads(body)["secret"]
+    status, body = call(server.base, "POST", f"/v1/plans/{PLAN}/mixes", keys["committee"], DEMO_MIX | {"cross_check": False})
+    assert status == 201, body
+    return keys
+
+
+def members(n: int, seed_value: int = 280) -> list[dict[str, Any]]:
+    """Invented members: a spread of preferences and account sizes."""
+    rng = random.Random(seed_value)
+    out = []
+    for i in range(n):
+        r = rng.random()
+        if r < 0.55:
+            pref: dict[str, Any] = {"risk_aversion": rng.choice([1, 2, 3, 4, 5, 6, 8])}
+        elif r < 0.75:
+            pref = {"risk_score": rng.randint(1, 3)}
+        elif r < 0.9:
+            pref = {"target_volatility": round(rng.uniform(0.02, 0.12), 3)}
+        else:
+            pref = {"max_loss": round(rng.uniform(0.05, 0.3), 2), "confidence": 0.95}
+        out.append({"member_id": f"m-{i:07d}", "amount": f"{rng.randint(100, 900000)}.{rng.randint(0, 99):02d}", "preference": pref})
+    return out
+
+
+def raw_insert_floor(database_url: str, rows: list[tuple[Any, ...]]) -> float:
+    """Insert the same rows into an empty copy of the allocations table, one transaction, timed."""
+    from sqlalchemy import create_engine
+
+    engine = create_engine(database_url)
+    with engine.connect() as conn:
+        dbapi = conn.connection.driver_connection
+        cols = "plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash"
+        if engine.dialect.name == "sqlite":
+            dbapi.execute("DROP TABLE IF EXISTS floor_rows")
+            dbapi.execute(f"CREATE TABLE floor_rows AS SELECT {cols} FROM allocations WHERE 0")
+            dbapi.commit()
+            start = time.perf_counter()
+            dbapi.execute("BEGIN IMMEDIATE")
+            dbapi.executemany(f"INSERT INTO floor_rows ({cols}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)", rows)
+            dbapi.commit()
+            elapsed = time.perf_counter() - start
+            dbapi.execute("DROP TABLE floor_rows")
+            dbapi.commit()
+        else:
+            with dbapi.cursor() as cur:
+                cur.execute("DROP TABLE IF EXISTS floor_rows")
+                cur.execute(f"CREATE TABLE floor_rows AS SELECT {cols} FROM allocations WITH NO DATA")
+            dbapi.commit()
+            start = time.perf_counter()
+            with dbapi.cursor() as cur:
+                with cur.copy(f"COPY floor_rows ({cols}) FROM STDIN") as copy:
+                    for row in rows:
+                        copy.write_row(row)
+            dbapi.commit()
+            elapsed = time.perf_counter() - start
+            with dbapi.cursor() as cur:
+                cur.execute("DROP TABLE floor_rows")
+            dbapi.commit()
+    engine.dispose()
+    return elapsed
+
+
+def logged_rows(database_url: str) -> list[tuple[Any, ...]]:
+    from sqlalchemy import create_engine, text
+
+    engine = create_engine(database_url)
+    with engine.connect() as conn:
+        rows = conn.execute(text(
+            "SELECT plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash "
+            "FROM allocations WHERE plan_id = :p ORDER BY seq"), {"p": PLAN}).all()
+    engine.dispose()
+    return [tuple(r) for r in rows]
+
+
+def bench_batch(server: Server, keys: dict[str, str], database_url: str, n: int) -> dict[str, float]:
+    body = orjson.dumps({"mix_version": DEMO_MIX["version"], "members": members(n)})
+    start = time.perf_counter()
+    status, answer = call(server.base, "POST", f"/v1/plans/{PLAN}/allocations/batch", keys["portal"], body)
+    elapsed = time.perf_counter() - start
+    assert status == 201, answer[:500]
+    count = orjson.loads(answer)["count"]
+    assert count == n, count
+    peak = server.peak_rss_mb()
+    start = time.perf_counter()
+    orjson.loads(body)
+    parse = time.perf_counter() - start
+    rows = [r for r in logged_rows(database_url)][-n:]
+    insert = raw_insert_floor(database_url, rows)
+    floor = parse + insert
+    return {"members": n, "seconds": elapsed, "floor_parse": parse, "floor_insert": insert, "floor": floor,
+            "ratio": elapsed / floor, "peak_rss_mb": peak, "body_mb": len(body) / 1e6}
+
+
+def wrk(url: str, seconds: int, script: Path | None) -> dict[str, float]:
+    cmd = ["wrk", "-t2", "-c16", f"-d{seconds}s", "--latency"]
+    if script is not None:
+        cmd += ["-s", str(script)]
+    out = subprocess.run(cmd + [url], capture_output=True, text=True, timeout=seconds + 60).stdout
+    rps = float(re.search(r"Requests/sec:\s+([\d.]+)", out).group(1))  # type: ignore[union-attr]
+
+    def ms(label: str) -> float:
+        m = re.search(rf"{label}%\s+([\d.]+)(us|ms|s)\b", out)
+        assert m, out
+        value, unit = float(m.group(1)), m.group(2)
+        return value / 1000 if unit == "us" else value * 1000 if unit == "s" else value
+
+    non2xx = re.search(r"Non-2xx or 3xx responses: (\d+)", out)
+    return {"rps": rps, "p50_ms": ms("50"), "p99_ms": ms("99"), "non_2xx": float(non2xx.group(1)) if non2xx else 0.0}
+
+
+def bench_singles(server: Server, keys: dict[str, str], seconds: int, workdir: Path) -> dict[str, dict[str, float]]:
+    plain = workdir / "single.lua"
+    plain.write_text(
+        'wrk.method = "POST"\n'
+        f"wrk.body = '{json.dumps({'member_id': 'm-bench', 'mix_version': DEMO_MIX['version'], 'amount': '48250.00', 'preference': {'risk_aversion': 4}})}'\n"
+        'wrk.headers["Content-Type"] = "application/json"\n'
+        f'wrk.headers["Authorization"] = "Bearer {keys["portal"]}"\n'
+    )
+    keyed = workdir / "single_keyed.lua"
+    keyed.write_text(plain.read_text() + (
+        "counter = 0\n"
+        "request = function()\n"
+        "  counter = counter + 1\n"
+        '  wrk.headers["Idempotency-Key"] = string.format(\'"bench-%d-%d"\', math.random(1, 1000000000), counter)\n'
+        "  return wrk.format()\n"
+        "end\n"
+    ))
+    url = f"{server.base}/v1/plans/{PLAN}/allocations"
+    return {
+        "floor_livez": wrk(f"{server.base}/livez", seconds, None),
+        "allocations": wrk(url, seconds, plain),
+        "allocations_with_idempotency_key": wrk(url, seconds, keyed),
+    }
+
+
+def run(label: str, database_url: str, workdir: Path, args: argparse.Namespace) -> dict[str, Any]:
+    server = Server(database_url, workdir)
+    try:
+        keys = seed(server)
+        result: dict[str, Any] = {"store": label}
+        if shutil.which("wrk"):
+            result["singles"] = bench_singles(server, keys, args.seconds, workdir)
+        else:
+            result["singles"] = "wrk not installed (apt-get install wrk)"
+        result["batch"] = bench_batch(server, keys, database_url, args.members)
+        return result
+    finally:
+        server.stop()
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--members", type=int, default=280_000)
+    parser.add_argument("--seconds", type=int, default=10)
+    parser.add_argument("--postgres", default=None, help="admin URL, e.g. postgresql+psycopg://postgres@127.0.0.1:5432/postgres")
+    parser.add_argument("--quick", action="store_true", help="20,000 members, 3 s per wrk run")
+    args = parser.parse_args()
+    if args.quick:
+        args.members, args.seconds = 20_000, 3
+    results = []
+    with tempfile.TemporaryDirectory(prefix="mixline-bench-") as tmp:
+        workdir = Path(tmp)
+        results.append(run("sqlite", f"sqlite:///{workdir}/bench.db", workdir, args))
+        if args.postgres:
+            import psycopg
+            from sqlalchemy.engine import make_url
+
+            name = f"mixline_bench_{os.getpid()}"
+            admin = make_url(args.postgres).set(drivername="postgresql").render_as_string(hide_password=False)
+            with psycopg.connect(admin, autocommit=True) as c:
+                c.execute(f'CREATE DATABASE "{name}"')
+            try:
+                results.append(run("postgresql", make_url(args.postgres).set(database=name).render_as_string(hide_password=False), workdir, args))
+            finally:
+                with psycopg.connect(admin, autocommit=True) as c:
+                    c.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+    for r in results:
+        print(f"\n== {r['store']} ==")
+        s = r["singles"]
+        if isinstance(s, dict):
+            for name, f in s.items():
+                print(f"  {name:34s} {f['rps']:8.0f} req/s  p50 {f['p50_ms']:6.2f} ms  p99 {f['p99_ms']:6.2f} ms  non-2xx {f['non_2xx']:.0f}")
+            ratio = s["allocations"]["rps"] / s["floor_livez"]["rps"]
+            print(f"  allocations / trivial-endpoint floor: {ratio:.2f}  (target >= 2,500 req/s, p99 <= 15 ms)")
+        b = r["batch"]
+        print(f"  batch {b['members']:,} members ({b['body_mb']:.1f} MB): {b['seconds']:.3f} s end to end; "
+              f"floor {b['floor']:.3f} s (parse {b['floor_parse']:.3f} + raw insert {b['floor_insert']:.3f}); "
+              f"ratio {b['ratio']:.2f} (target <= 1.5); server peak RSS {b['peak_rss_mb']:.0f} MB (target < 1536)")
+    print("\n" + json.dumps(results, indent=2))
+
+
+if __name__ == "__main__":
+    main()
