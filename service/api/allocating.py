@@ -19,7 +19,7 @@ from service.allocation import (
     record_text,
     render,
 )
-from service.store import LogBatch
+from service.store import IdempotencyCompletion, LogBatch
 
 from .schemas import AllocationIn, PreferenceIn
 from .state import AppState, PlanView
@@ -69,7 +69,13 @@ def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: s
     )
 
 
-def log_batch(plan_id: str, mix_version: str, created_at: str, records: list[dict[str, Any]]) -> LogBatch:
+def log_batch(
+    plan_id: str,
+    mix_version: str,
+    created_at: str,
+    records: list[dict[str, Any]],
+    completes: IdempotencyCompletion | None = None,
+) -> LogBatch:
     return LogBatch(
         plan_id=plan_id,
         mix_version=mix_version,
@@ -77,6 +83,7 @@ def log_batch(plan_id: str, mix_version: str, created_at: str, records: list[dic
         allocation_ids=[r["allocation_id"] for r in records],
         member_ids=[r["member_id"] for r in records],
         bodies=[record_text(r).decode() for r in records],
+        completes=completes,
     )
 
 

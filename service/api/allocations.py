@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 from typing import Annotated
 
+import orjson
 from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
@@ -15,7 +16,8 @@ from .allocating import answer, log_batch, rendered, utc_now_text
 from .bodies import parse_body, request_body_schema
 from .deps import CallerDep, StateDep
 from .errors import NotFound
-from .responses import AUTHED, json_response, problems
+from . import idempotency
+from .responses import AUTHED, json_response, problems, raw_json_response
 from .schemas import AllocationIn, AllocationListOut, AllocationOut
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/allocations", tags=["allocations"])
@@ -25,19 +27,34 @@ READERS = ("portal",)
 
 @router.post(
     "", status_code=201, response_model=AllocationOut, operation_id="create_allocation",
-    responses=problems(*AUTHED, 409), openapi_extra=request_body_schema("AllocationIn"),
+    responses=problems(400, *AUTHED, 409), openapi_extra=request_body_schema("AllocationIn"),
 )
-async def create_allocation(plan_id: str, request: Request, caller: CallerDep, state: StateDep) -> Response:
+async def create_allocation(
+    plan_id: str, request: Request, caller: CallerDep, state: StateDep, idempotency_key: idempotency.KeyHeader = None
+) -> Response:
     caller.require(plan_id, "portal")
     plan = state.plan(plan_id)
-    body = parse_body(AllocationIn, await request.body())
-    created_at = utc_now_text()
-    record = answer(state, plan, body, created_at=created_at)
-    # The answer goes out only once its log row is committed: no unlogged recommendation exists.
-    await asyncio.wrap_future(state.db.writer.submit(log_batch(plan_id, body.mix_version, created_at, [record])))
+    raw = await request.body()
+    body = parse_body(AllocationIn, raw)
+    owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
+    if isinstance(owned, Response):
+        return owned
+    try:
+        created_at = utc_now_text()
+        record = answer(state, plan, body, created_at=created_at)
+        doc = render(record, state.mixes.view(plan_id, body.mix_version).codes)
+        payload = orjson.dumps(doc)
+        completes = None if owned is None else owned.completion(201, payload)
+        # The answer goes out only once its log row is committed: no unlogged recommendation exists.
+        await asyncio.wrap_future(
+            state.db.writer.submit(log_batch(plan_id, body.mix_version, created_at, [record], completes))
+        )
+    except BaseException:
+        if owned is not None:
+            await idempotency.give_up(state, owned)
+        raise
     state.metrics.allocations.labels(plan_id).inc()
-    doc = render(record, state.mixes.view(plan_id, body.mix_version).codes)
-    return json_response(doc, 201, headers={"Location": f"/v1/plans/{plan_id}/allocations/{doc['allocation_id']}"})
+    return raw_json_response(payload, 201, headers={"Location": f"/v1/plans/{plan_id}/allocations/{doc['allocation_id']}"})
 
 
 @router.get(

@@ -24,6 +24,7 @@ from service.allocation.batch_records import BatchContext, money_texts, numbers,
 from service.store import LogStream
 
 from .allocating import utc_now_text
+from . import idempotency
 from .batch_members import BatchRequest, read_batch
 from .bodies import request_body_schema
 from .deps import CallerDep, StateDep
@@ -63,7 +64,7 @@ def prepare(state: AppState, plan: PlanView, raw: bytes) -> PreparedBatch:
     return PreparedBatch(context, request, result, batch_allocation_ids(request.columns.size))
 
 
-def feed(prepared: PreparedBatch, stream: LogStream) -> bytes:
+def feed(prepared: PreparedBatch, stream: LogStream, owned: idempotency.Claim | None) -> bytes:
     """Write the records chunk by chunk into the stream, then build the answer.
 
     Runs while the writer inserts what it was given, so that record text, hashing and the
@@ -77,7 +78,9 @@ def feed(prepared: PreparedBatch, stream: LogStream) -> bytes:
             ids, members = prepared.allocation_ids[rows], request.member_ids[rows]
             texts = record_texts(ctx, ids, members, request.columns.subset(rows), result.subset(rows))  # type: ignore[arg-type]
             stream.put(ids, members, texts)
-        return answer(prepared)
+        payload = answer(prepared)
+        stream.finish(None if owned is None else owned.completion(201, payload))
+        return payload
     except BaseException as error:
         stream.fail(error)
         raise
@@ -123,18 +126,28 @@ def answer(prepared: PreparedBatch) -> bytes:
 
 @router.post(
     "/batch", status_code=201, response_model=BatchOut, operation_id="create_allocation_batch",
-    responses=problems(*AUTHED, 409, 413), openapi_extra=request_body_schema("BatchIn"),
+    responses=problems(400, *AUTHED, 409, 413), openapi_extra=request_body_schema("BatchIn"),
 )
-async def create_batch(plan_id: str, request: Request, caller: CallerDep, state: StateDep) -> Response:
+async def create_batch(
+    plan_id: str, request: Request, caller: CallerDep, state: StateDep, idempotency_key: idempotency.KeyHeader = None
+) -> Response:
     caller.require(plan_id, "portal")
     plan = state.plan(plan_id)
     raw = await request.body()
     prepared = await run_in_threadpool(prepare, state, plan, raw)
-    ctx = prepared.context
-    stream = LogStream(ctx.plan_id, ctx.mix_version, ctx.created_at, prepared.request.columns.size)
-    committed = state.db.writer.submit_stream(stream)
-    payload = await run_in_threadpool(feed, prepared, stream)
-    # The answer goes out only after every member's record is committed.
-    await asyncio.wrap_future(committed)
+    owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
+    if isinstance(owned, Response):
+        return owned
+    try:
+        ctx = prepared.context
+        stream = LogStream(ctx.plan_id, ctx.mix_version, ctx.created_at, prepared.request.columns.size)
+        committed = state.db.writer.submit_stream(stream)
+        payload = await run_in_threadpool(feed, prepared, stream, owned)
+        # The answer goes out only after every member's record is committed.
+        await asyncio.wrap_future(committed)
+    except BaseException:
+        if owned is not None:
+            await idempotency.give_up(state, owned)
+        raise
     state.metrics.allocations.labels(plan_id).inc(prepared.result.risky.size)
     return raw_json_response(payload, 201)

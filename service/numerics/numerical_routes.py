@@ -7,8 +7,10 @@ exact code of this package:
 2. ``risk_grid``: for a grid of target volatilities, maximise the expected return;
 3. ``return_grid``: for a grid of target returns, minimise the variance.
 
-A grid route reports its best-Sharpe grid point. Grids have ``GRID_POINTS`` points and
-each point starts from the previous one's answer.
+A grid route reports its best-Sharpe grid point. Grids have ``grid_points(n)`` points
+(GRID_POINTS, halved above LARGE_MIX assets: each SLSQP step costs O(n^2 m) with m ~ 2n
+bound rows, and the halved grid keeps N = 200 at a few seconds) and each point starts
+from the previous one's answer.
 """
 
 from __future__ import annotations
@@ -26,11 +28,18 @@ import scipy.optimize
 from service.numerics.inputs import MixInputs
 from service.numerics.portfolio import Portfolio
 
-__all__ = ["CrossCheck", "cross_checks", "GRID_POINTS"]
+__all__ = ["CrossCheck", "cross_checks", "GRID_POINTS", "LARGE_MIX", "grid_points"]
 
 FloatArray = npt.NDArray[np.float64]
 
 GRID_POINTS = 40
+LARGE_MIX = 100
+
+
+def grid_points(n: int) -> int:
+    """Points per grid for a mix of n assets."""
+    return GRID_POINTS if n <= LARGE_MIX else GRID_POINTS // 2
+
 _SLSQP_OPTIONS: dict[str, Any] = {"ftol": 1e-12, "maxiter": 300}
 
 
@@ -143,7 +152,7 @@ class _Routes:
     def return_grid(self, low_w: FloatArray, high_w: FloatArray) -> FloatArray:
         mu_z = self.mu_z
         # Interior points only: at either end the feasible set shrinks to a single portfolio.
-        targets = np.linspace(float(self.mu @ low_w), float(self.mu @ high_w), GRID_POINTS + 2)[1:-1]
+        targets = np.linspace(float(self.mu @ low_w), float(self.mu @ high_w), grid_points(self.n) + 2)[1:-1]
         w = low_w
         found: list[FloatArray] = []
         for m in targets:
@@ -157,7 +166,7 @@ class _Routes:
         lowest = math.sqrt(float(low_w @ s @ low_w))
         highest = math.sqrt(float(high_w @ s @ high_w))
         # Geometric spacing: the Sharpe ratio peaks near the low-risk end of the frontier.
-        vols = np.geomspace(lowest, highest, GRID_POINTS + 2)[1:-1]
+        vols = np.geomspace(lowest, highest, grid_points(self.n) + 2)[1:-1]
         w = low_w
         prev_vol, prev_ret = lowest, float(mu @ low_w)
         slope = float(np.linalg.norm(mu_z))

@@ -7,10 +7,12 @@ PostgreSQL are both supported through the same calls.
 from service.store.chain import GENESIS_HASH, verify_chain
 from service.store.database import Database
 from service.store.errors import Conflict
+from service.store.idempotency import IdempotencyRecord, purge_expired, release, reserve
 from service.store.key_secrets import secret_hash, secret_matches
 from service.store.records import (
     BadRow,
     ChainReport,
+    IdempotencyCompletion,
     KeyRecord,
     LogBatch,
     LogStream,
@@ -38,6 +40,8 @@ __all__ = [
     "ChainWriter",
     "Conflict",
     "Database",
+    "IdempotencyCompletion",
+    "IdempotencyRecord",
     "KeyRecord",
     "LogBatch",
     "LogStream",
@@ -51,6 +55,9 @@ __all__ = [
     "insert_mix",
     "insert_plan",
     "list_allocations",
+    "purge_expired",
+    "release",
+    "reserve",
     "secret_hash",
     "secret_matches",
     "set_active_version",

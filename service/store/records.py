@@ -39,6 +39,18 @@ class MixRecord:
 
 
 @dataclass(frozen=True)
+class IdempotencyCompletion:
+    """What the writer stores into an Idempotency-Key reservation in the same transaction as
+    the rows it guards, so that an answer is replayable exactly when it was logged."""
+
+    plan_id: str
+    key_id: str
+    idempotency_key: str
+    status_code: int
+    response: str
+
+
+@dataclass(frozen=True)
 class LogBatch:
     """Rows to append to one plan's chain, in order.
 
@@ -52,9 +64,13 @@ class LogBatch:
     allocation_ids: Sequence[str]
     member_ids: Sequence[str]
     bodies: Sequence[str]
+    completes: IdempotencyCompletion | None = None
 
     def triples(self) -> Iterator[tuple[str, str, str]]:
         return zip(self.allocation_ids, self.member_ids, self.bodies, strict=True)
+
+    def completion(self) -> IdempotencyCompletion | None:
+        return self.completes
 
 
 class LogStream:
@@ -81,15 +97,32 @@ class LogStream:
     def fail(self, error: BaseException) -> None:
         self._chunks.put(error)
 
+    def finish(self, completes: IdempotencyCompletion | None = None) -> None:
+        """After the last rows: the writer commits once this arrives (with what it completes)."""
+        self._chunks.put(_Finish(completes))
+
+    def completion(self) -> IdempotencyCompletion | None:
+        """Blocks until the producer finished; called by the writer after the last row."""
+        chunk = self._next()
+        if isinstance(chunk, _Finish):
+            return chunk.completes
+        raise ValueError(f"stream sent more than the {self.size} rows it announced")
+
+    def _next(self) -> Any:
+        try:
+            chunk = self._chunks.get(timeout=self._wait)
+        except queue.Empty:
+            raise TimeoutError(f"no rows for {self._wait} s; the batch is abandoned") from None
+        if isinstance(chunk, BaseException):
+            raise chunk
+        return chunk
+
     def triples(self) -> Iterator[tuple[str, str, str]]:
         seen = 0
         while seen < self.size:
-            try:
-                chunk = self._chunks.get(timeout=self._wait)
-            except queue.Empty:
-                raise TimeoutError(f"no rows for {self._wait} s; the batch is abandoned") from None
-            if isinstance(chunk, BaseException):
-                raise chunk
+            chunk = self._next()
+            if isinstance(chunk, _Finish):
+                raise ValueError(f"stream finished after {seen} of {self.size} rows")
             ids, members, bodies = chunk
             for name, values in (("allocation_ids", ids), ("member_ids", members), ("bodies", bodies)):
                 # One join per chunk finds a separator (or a non-string) in C, not row by row.
@@ -123,3 +156,8 @@ class ChainReport:
     checked: int
     head_hash: str
     first_bad: BadRow | None
+
+
+@dataclass(frozen=True)
+class _Finish:
+    completes: IdempotencyCompletion | None

@@ -148,3 +148,22 @@ class ChainHead(Base):
     )
     last_seq: Mapped[int] = mapped_column(BigInteger)
     last_hash: Mapped[str] = mapped_column(CHAR(64))
+
+
+class IdempotencyKey(Base):
+    """A reservation of an Idempotency-Key by one API key in one plan, then the answer it replays."""
+
+    __tablename__ = "idempotency_keys"
+    __table_args__ = (Index("ix_idempotency_keys_expires_at", "expires_at"),)
+
+    plan_id: Mapped[str] = mapped_column(
+        String(), ForeignKey("plans.plan_id"), primary_key=True
+    )
+    key_id: Mapped[str] = mapped_column(String(), primary_key=True)
+    idempotency_key: Mapped[str] = mapped_column(String(), primary_key=True)
+    fingerprint: Mapped[str] = mapped_column(CHAR(64))
+    state: Mapped[str] = mapped_column(String())  # "in_flight" | "done"
+    status_code: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    response: Mapped[str | None] = mapped_column(Text, nullable=True)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    expires_at: Mapped[datetime] = mapped_column(UtcDateTime)

@@ -31,6 +31,7 @@ from sqlalchemy import Engine
 from sqlalchemy.exc import DBAPIError
 
 from service.store.chain import GENESIS_HASH, SEPARATOR, link_hash
+from service.store.idempotency import COMPLETE_SQL, completion_parameters
 from service.store.records import LogBatch, LogStream
 from service.store.wal_checkpoints import WalCheckpointer
 
@@ -121,6 +122,16 @@ class _Chains:
                 seq, prev_hash = row[1], row[8]
                 yield row
             self.heads[plan_id] = (seq, prev_hash)
+
+
+def _completions(jobs: Iterable[_Job]) -> list[tuple[int, str, str, str, str]]:
+    """Idempotency answers to store with these rows (a stream's arrives after its last row)."""
+    found = []
+    for job in jobs:
+        completes = job.batch.completion()
+        if completes is not None:
+            found.append(completion_parameters(completes))
+    return found
 
 
 def _head_rows(chains: _Chains) -> list[tuple[int, str, str]]:
@@ -391,6 +402,9 @@ class ChainWriter:
             "SET last_seq = excluded.last_seq, last_hash = excluded.last_hash",
             [(plan_id, seq, last) for plan_id, (seq, last) in chains.heads.items()],
         )
+        completions = _completions(jobs)
+        if completions:
+            dbapi.executemany(COMPLETE_SQL.format(p="?"), completions)
         dbapi.commit()
         if self._checkpointer is not None:
             self._checkpointer.committed(sum(job.size for job in jobs))
@@ -416,9 +430,13 @@ class ChainWriter:
                     for row in chains.rows(jobs):
                         copy.write_row(row)
                 cursor.executemany(move_heads, _head_rows(chains))
+                completions = _completions(jobs)
+                if completions:
+                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
                 dbapi.commit()
                 return
             rows = list(chains.rows(jobs))
+            completions = _completions(jobs)
             # Insert, head update and COMMIT in one round trip (plus the lock's): this
             # path serves the small groups, where round trips are most of the time.
             with dbapi.pipeline():
@@ -428,6 +446,8 @@ class ChainWriter:
                     rows,
                 )
                 cursor.executemany(move_heads, _head_rows(chains))
+                if completions:
+                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
                 dbapi.commit()
 
     @staticmethod

@@ -253,3 +253,26 @@ async def test_openapi_declares_problem_json(world: World) -> None:
                     seen += 1
     assert seen > 20
 
+
+
+async def test_readyz_fails_while_migrations_are_behind(empty_db_url: str) -> None:
+    import httpx
+
+    from service.api import create_app
+    from service.settings import Settings
+    from service.store import Database
+    from service.store.revisions import downgrade
+
+    db = Database(empty_db_url)
+    try:
+        db.upgrade()
+        downgrade(db.engine, "0001")
+        app = create_app(Settings(database_url=db.url), db, migrate=False)
+        async with app.router.lifespan_context(app):
+            async with httpx.AsyncClient(transport=httpx.ASGITransport(app=app), base_url="http://t") as c:
+                r = await c.get("/readyz")
+                assert_problem(r, 503)
+                assert "migrations" in r.json()["detail"]
+                assert (await c.get("/livez")).status_code == 200
+    finally:
+        db.close()

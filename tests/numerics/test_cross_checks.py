@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 
 from service.numerics import cross_checks, solve_mix, tangency
-from service.numerics.numerical_routes import GRID_POINTS
+from service.numerics.numerical_routes import grid_points
 from tests.numerics.scenarios import scenario
 
 
@@ -26,7 +26,7 @@ def test_routes_agree_with_the_exact_tangency(n: int, case: str) -> None:
     for c in checks:
         assert c.seconds > 0.0
         assert c.sharpe_ratio == pytest.approx(exact.sharpe_ratio - c.sharpe_gap, rel=1e-12)
-    assert GRID_POINTS == 40
+    assert grid_points(n) == 40 and grid_points(200) == 20
 
 
 def test_solve_mix_carries_the_checks() -> None:

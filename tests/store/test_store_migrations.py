@@ -13,7 +13,9 @@ from service.store import Database
 from service.store.revisions import downgrade, script_heads
 from service.store.schema import Base
 
-EXPECTED_TABLES = {"alembic_version", "allocations", "api_keys", "chain_heads", "mixes", "plans"}
+EXPECTED_TABLES = {
+    "alembic_version", "allocations", "api_keys", "chain_heads", "idempotency_keys", "mixes", "plans",
+}
 
 
 def test_upgrade_makes_migrations_current(empty_db_url: str) -> None:
@@ -54,7 +56,7 @@ def test_models_match_the_migrations(db_url: str) -> None:
 
 
 def test_one_head_shipped_as_package_data() -> None:
-    assert script_heads() == frozenset({"0001"})
+    assert script_heads() == frozenset({"0002"})
     migrations = Path(__file__).resolve().parents[2] / "service" / "store" / "migrations"
     assert (migrations / "env.py").is_file()
 
@@ -72,3 +74,17 @@ def test_unreachable_database_reports_false(tmp_path: Path) -> None:
         assert not sqlite_dir.ping()
     finally:
         sqlite_dir.close()
+
+
+def test_one_revision_behind_is_not_current(empty_db_url: str) -> None:
+    from service.store.revisions import downgrade
+
+    db = Database(empty_db_url)
+    try:
+        db.upgrade()
+        downgrade(db.engine, "0001")
+        assert not db.migrations_current()  # /readyz reports not ready in this state
+        db.upgrade()
+        assert db.migrations_current()
+    finally:
+        db.close()

@@ -1,0 +1,105 @@
+"""Idempotency-Key handling for the allocation routes (draft-ietf-httpapi-idempotency-key-header).
+
+- The key is scoped to the calling plan and API key; its fingerprint is the SHA-256 of the raw
+  request body, so "the same request" means the same bytes.
+- First use: the request reserves the key, and its answer is stored with its log rows in one
+  transaction (the writer completes the reservation), so a retry gets exactly what was logged.
+- Same key, same body, answer stored: the first answer again, nothing new logged.
+- Same key, same body, first request still running: 409 with Retry-After.
+- Same key, another body: 422.
+- A request that fails before anything is logged gives its reservation up, so a corrected
+  retry is answered normally. Reservations expire after MIXLINE_IDEMPOTENCY_RETENTION_HOURS
+  (24 by default) and are then replaced.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from dataclasses import dataclass
+from datetime import timedelta
+
+from typing import Annotated
+
+from fastapi import Header
+from starlette.concurrency import run_in_threadpool
+from starlette.responses import Response
+
+from service.store import IdempotencyCompletion, IdempotencyRecord, release, reserve
+
+from .auth import Caller
+from .errors import ConflictError, ProblemError, Unprocessable
+from .state import AppState
+
+KeyHeader = Annotated[
+    str | None,
+    Header(
+        alias="Idempotency-Key",
+        description='Optional. A retry with the same key and body returns the first answer; e.g. "8e03-41a2"',
+    ),
+]
+# An RFC 8941 sf-string, as the draft asks ("..."); a bare token is accepted too.
+_VALUE = re.compile(r'"([\x20-\x21\x23-\x5b\x5d-\x7e]{1,255})"|([\x21\x23-\x7e]{1,255})')
+
+
+class BadIdempotencyKey(ProblemError):
+    status, title, slug = 400, "Bad Idempotency-Key", "bad-idempotency-key"
+
+
+@dataclass(frozen=True)
+class Claim:
+    plan_id: str
+    key_id: str
+    key: str
+
+    def completion(self, status_code: int, response: bytes) -> IdempotencyCompletion:
+        return IdempotencyCompletion(self.plan_id, self.key_id, self.key, status_code, response.decode())
+
+
+def parse_key(value: str | None) -> str | None:
+    if value is None:
+        return None
+    match = _VALUE.fullmatch(value.strip())
+    if match is None:
+        raise BadIdempotencyKey(
+            'Idempotency-Key must be a quoted string of 1 to 255 printable ASCII characters, e.g. "8e03-41a2"'
+        )
+    return match.group(1) or match.group(2)
+
+
+async def claim(state: AppState, caller: Caller, plan_id: str, header: str | None, raw: bytes) -> Claim | Response | None:
+    """None without a key; a Claim when this request owns the key; a Response to replay."""
+    key = parse_key(header)
+    if key is None:
+        return None
+    fingerprint = hashlib.sha256(raw).hexdigest()
+    retention = timedelta(hours=state.settings.idempotency_retention_hours)
+
+    def reserve_now() -> IdempotencyRecord | None:
+        with state.db.writing() as s:
+            return reserve(s, plan_id=plan_id, key_id=caller.key_id, idempotency_key=key,
+                           fingerprint=fingerprint, retention=retention)
+
+    standing = await run_in_threadpool(reserve_now)
+    if standing is None:
+        return Claim(plan_id, caller.key_id, key)
+    if standing.fingerprint != fingerprint:
+        raise Unprocessable(
+            "Idempotency-Key was already used with another request body; use a new key for a new request",
+            errors=[{"field": "Idempotency-Key", "reason": "reused with another request body"}],
+        )
+    if standing.state != "done" or standing.response is None or standing.status_code is None:
+        raise ConflictError(
+            "a request with this Idempotency-Key is still being processed; retry shortly",
+            headers={"Retry-After": "1"},
+        )
+    return Response(standing.response.encode(), status_code=standing.status_code,
+                    media_type="application/json", headers={"Idempotent-Replayed": "true"})
+
+
+async def give_up(state: AppState, owned: Claim) -> None:
+    def release_now() -> None:
+        with state.db.writing() as s:
+            release(s, plan_id=owned.plan_id, key_id=owned.key_id, idempotency_key=owned.key)
+
+    await run_in_threadpool(release_now)
