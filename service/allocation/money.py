@@ -7,6 +7,7 @@ risky + safe == amount and the per-asset amounts add up to the risky amount to t
 from __future__ import annotations
 
 from collections.abc import Sequence
+import math
 from decimal import Decimal, InvalidOperation
 
 import numpy as np
@@ -67,6 +68,8 @@ def split_units(total: int, weights: Sequence[float] | np.ndarray) -> np.ndarray
     Floors every exact share, then hands the units still missing to the largest fractional parts
     (ties to the earlier asset), so the parts are integers that sum to `total` exactly.
     """
+    if len(weights) <= 64:
+        return np.array(_split_small(total, [float(x) for x in weights]), dtype=np.int64)
     w = np.asarray(weights, dtype=float)
     exact = w * total
     floors = np.floor(exact)
@@ -84,3 +87,20 @@ def split_units(total: int, weights: Sequence[float] | np.ndarray) -> np.ndarray
 def risky_units(total: int, risky_fraction: float) -> int:
     """The risky share of `total`, to the nearest unit (half to even); safe is the rest."""
     return int(round(risky_fraction * total))
+
+
+def _split_small(total: int, weights: list[float]) -> list[int]:
+    """The same apportionment in plain Python: for a handful of assets numpy's call overhead
+    is most of the cost (this runs once per single allocation)."""
+    exact = [w * total for w in weights]
+    parts = [math.floor(x) for x in exact]
+    missing = total - sum(parts)
+    if missing:
+        order = sorted(range(len(exact)), key=lambda i: -(exact[i] - parts[i]))  # stable: ties to the earlier
+        if missing > 0:
+            for i in order[:missing]:
+                parts[i] += 1
+        else:
+            for i in order[missing:]:
+                parts[i] -= 1
+    return parts

@@ -14,11 +14,13 @@ from service.store import get_allocation, list_allocations
 
 from .allocating import answer, log_batch, rendered, utc_now_text
 from .bodies import parse_body, request_body_schema
+from .auth import Caller
 from .deps import CallerDep, StateDep
 from .errors import NotFound
 from . import idempotency
 from .responses import AUTHED, json_response, problems, raw_json_response
 from .schemas import AllocationIn, AllocationListOut, AllocationOut
+from .state import AppState
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/allocations", tags=["allocations"])
 
@@ -32,9 +34,14 @@ READERS = ("portal",)
 async def create_allocation(
     plan_id: str, request: Request, caller: CallerDep, state: StateDep, idempotency_key: idempotency.KeyHeader = None
 ) -> Response:
+    return await allocate_one(state, caller, plan_id, await request.body(), idempotency_key)
+
+
+async def allocate_one(state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None) -> Response:
+    """One member's allocation, logged before it is answered. Shared by the route above and the
+    fast path (fastpath.py), which calls it without FastAPI's routing and dependency work."""
     caller.require(plan_id, "portal")
     plan = state.plan(plan_id)
-    raw = await request.body()
     body = parse_body(AllocationIn, raw)
     owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
     if isinstance(owned, Response):

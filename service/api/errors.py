@@ -145,50 +145,43 @@ def validation_errors(exc: RequestValidationError) -> list[dict[str, str]]:
     return errors
 
 
-def install(app: FastAPI) -> None:
-    async def on_problem(request: Request, exc: Exception) -> Response:
-        assert isinstance(exc, ProblemError)
+def response_for(exc: BaseException, path: str, method: str = "") -> Response:
+    """The problem response for any exception: the one mapping both the routes and the
+    allocation fast path (fastpath.py) use."""
+    if isinstance(exc, ProblemError):
         return problem_response(
             exc.status, exc.title, exc.detail, slug=exc.slug, errors=exc.errors, headers=exc.headers,
-            instance=request.url.path,
+            instance=path,
         )
-
-    async def on_domain(request: Request, exc: Exception) -> Response:
-        assert isinstance(exc, AllocationError | InputError)
+    if isinstance(exc, AllocationError | InputError):
         return problem_response(
             422, "Unprocessable request", f"{exc.field}: {exc.reason}", slug="unprocessable",
-            errors=[field_error(exc.field, exc.reason)], instance=request.url.path,
+            errors=[field_error(exc.field, exc.reason)], instance=path,
         )
-
-    async def on_validation(request: Request, exc: Exception) -> Response:
-        assert isinstance(exc, RequestValidationError)
+    if isinstance(exc, RequestValidationError):
         errors = validation_errors(exc)
         first = errors[0] if errors else field_error("body", "invalid")
         more = f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""
         return problem_response(
             422, "Invalid request", f"{first['field']}: {first['reason']}{more}", slug="validation",
-            errors=errors, instance=request.url.path,
+            errors=errors, instance=path,
         )
-
-    async def on_http(request: Request, exc: Exception) -> Response:
-        assert isinstance(exc, StarletteHTTPException)
+    if isinstance(exc, StarletteHTTPException):
         titles = {404: "Not found", 405: "Method not allowed", 413: "Payload too large"}
         return problem_response(
             exc.status_code, titles.get(exc.status_code, "HTTP error"), str(exc.detail),
-            slug=f"http-{exc.status_code}", headers=getattr(exc, "headers", None),
-            instance=request.url.path,
+            slug=f"http-{exc.status_code}", headers=getattr(exc, "headers", None), instance=path,
         )
+    log.error("unhandled error on %s %s", method, path, exc_info=exc)
+    return problem_response(
+        500, "Internal error", "the service failed to answer; the failure is logged",
+        slug="internal", instance=path,
+    )
 
-    async def on_unexpected(request: Request, exc: Exception) -> Response:
-        log.exception("unhandled error on %s %s", request.method, request.url.path)
-        return problem_response(
-            500, "Internal error", "the service failed to answer; the failure is logged",
-            slug="internal", instance=request.url.path,
-        )
 
-    app.add_exception_handler(ProblemError, on_problem)
-    app.add_exception_handler(AllocationError, on_domain)
-    app.add_exception_handler(InputError, on_domain)
-    app.add_exception_handler(RequestValidationError, on_validation)
-    app.add_exception_handler(StarletteHTTPException, on_http)
-    app.add_exception_handler(Exception, on_unexpected)
+def install(app: FastAPI) -> None:
+    async def handle(request: Request, exc: Exception) -> Response:
+        return response_for(exc, request.url.path, request.method)
+
+    for kind in (ProblemError, AllocationError, InputError, RequestValidationError, StarletteHTTPException, Exception):
+        app.add_exception_handler(kind, handle)

@@ -50,9 +50,10 @@ _T_RTOL = 1e-12
 class Face:
     """Solution of the equality-constrained problem on one face.
 
-    ``y``/``t`` are the homogenised weights (t == 1 for minimum variance); ``grad`` is the
-    reduced gradient S y - alpha e - beta 1 on every asset, whose sign on a bounded asset
-    is its bound multiplier (>= 0 at a lower bound, <= 0 at an upper bound).
+    ``y``/``t`` are the homogenised weights, w = y / t (t == 1 for minimum variance, and
+    for the primal-dual iteration, which rescales to weight units); ``grad`` is the reduced
+    gradient S y - alpha e - beta 1 on every asset, whose sign on a bounded asset is its
+    bound multiplier (>= 0 at a lower bound, <= 0 at an upper bound).
     """
 
     y: FloatArray
@@ -72,23 +73,34 @@ class BoxProblem:
         self.hi = upper
         self.e = excess
         self.n = lower.shape[0]
+        low_min, high_max = float(lower.min()), float(upper.max())
+        low_max, high_min = float(lower.max()), float(upper.min())
+        all_finite = math.isfinite(low_min) and math.isfinite(high_max)
+        if all_finite:
+            # Finite bounds (the common case): no masking needed anywhere.
+            self.finite_lo = self.finite_hi = np.ones(self.n, dtype=bool)
+            self.lo0, self.hi0 = lower, upper
+        else:
+            self.finite_lo = np.isfinite(lower)
+            self.finite_hi = np.isfinite(upper)
+            self.lo0 = np.where(self.finite_lo, lower, 0.0)
+            self.hi0 = np.where(self.finite_hi, upper, 0.0)
         self.fixed = lower == upper
-        self.finite_lo = np.isfinite(lower)
-        self.finite_hi = np.isfinite(upper)
-        self.lo0 = np.where(self.finite_lo, lower, 0.0)
-        self.hi0 = np.where(self.finite_hi, upper, 0.0)
-        self.e_scale = float(np.max(np.abs(excess))) if excess is not None else 0.0
-        self.diag_max = float(np.max(np.diag(covariance)))
-        # With finite lower bounds, sum|w| <= 1 + 2 sum(max(-lo, 0)) on the budget; with finite
-        # bounds max|w| <= the largest bound. Both scale the tolerances without a pass over w.
-        self.abs_sum_bound = 1.0 + 2.0 * float(np.maximum(-self.lo0, 0.0).sum()) if self.finite_lo.all() else math.inf
-        self.abs_max_bound = float(max(np.abs(self.lo0).max(), np.abs(self.hi0).max(), 1.0)) \
-            if (self.finite_lo.all() and self.finite_hi.all()) else math.inf
+        self.any_fixed = bool(self.fixed.any())
+        self.e_scale = float(np.abs(excess).max()) if excess is not None else 0.0
+        self.diag_max = float(covariance.diagonal().max())
+        # sum|w| <= 1 + 2 sum(max(-lo, 0)) on the budget and max|w| <= the largest bound, so
+        # with finite bounds both tolerances are scaled without a pass over w.
+        if all_finite:
+            self.abs_sum_bound = 1.0 if low_min >= 0.0 else 1.0 + 2.0 * float(np.maximum(-lower, 0.0).sum())
+            self.abs_max_bound = max(1.0, high_max, -low_min, abs(low_max), abs(high_min))
+        else:
+            self.abs_sum_bound = self.abs_max_bound = math.inf
         # Columns (e, 1, S c): S c starts at zero and is filled per solve.
-        self.base = np.zeros((self.n, 3))
-        if excess is not None:
-            self.base[:, 0] = excess
+        self.base = np.empty((self.n, 3))
+        self.base[:, 0] = 0.0 if excess is None else excess
         self.base[:, 1] = 1.0
+        self.base[:, 2] = 0.0
 
     @property
     def tangency(self) -> bool:
@@ -96,7 +108,9 @@ class BoxProblem:
 
     def bound_values(self, state: StateArray) -> FloatArray:
         """The weight (per unit t) each bounded asset is held at; 0 for free assets."""
-        return np.where(state == UPPER, self.hi0, np.where((state == LOWER) | (state == FIXED), self.lo0, 0.0))
+        out: FloatArray = np.where(state == UPPER, self.hi0, self.lo0)
+        out[state == FREE] = 0.0
+        return out
 
     def solve_face(self, state: StateArray) -> Face | None:
         """Exact KKT solution on the face ``state``; None when the face is singular."""
@@ -422,25 +436,26 @@ def min_variance_kkt_residual(s: FloatArray, lo: FloatArray, hi: FloatArray, w: 
 
 def _box_residual(diag_max: float, partial: FloatArray, lo: FloatArray, hi: FloatArray, w: FloatArray,
                   state: StateArray, beta_hint: float, extra_scale: float) -> float:
-    free = np.flatnonzero(state == FREE)
-    b = float(partial.take(free).mean()) if free.size else beta_hint
+    free = state == FREE
+    side = _SIDE[state + 1]
+    count = int(np.count_nonzero(free))
+    b = float(partial[free].sum()) / count if count else beta_hint
     g = partial - b
+    abs_g = np.abs(g)
+    # Free assets: |g| must vanish; bounded ones: side * g (the multiplier) must be >= 0.
+    worst_g = max(float(np.where(free, abs_g, -side * g).max()), 0.0)
     abs_w = np.abs(w)
     # Measured against the size of the terms summed in S w (|S_ij| <= max diag for PSD S),
     # so the residual is a relative backward error and does not grow with conditioning.
     scale = max(float(np.abs(partial).max()), diag_max * float(abs_w.sum()), abs(b), extra_scale,
                 np.finfo(float).tiny)
     w_scale = max(1.0, float(abs_w.max()))
-    stationarity = float(np.abs(g.take(free)).max()) / scale if free.size else 0.0
     # Infinite bounds give -inf here, never NaN, since w is finite.
-    primal = max(float((lo - w).max()), float((w - hi).max()), abs(float(w.sum()) - 1.0), 0.0) / w_scale
-    signed = g * _SIDE[state + 1]
-    dual = max(float(-signed.min()), 0.0) / scale
-    bounded = (state == LOWER) | (state == UPPER)
-    bound = np.where(state == LOWER, lo, hi)
-    gap = np.where(bounded, np.abs(w - np.where(bounded, bound, w)), 0.0)
-    complementarity = float((gap * np.abs(g)).max()) / (scale * w_scale)
-    return max(stationarity, primal, dual, complementarity)
+    primal = max(float((lo - w).max()), float((w - hi).max()), abs(float(w.sum()) - 1.0), 0.0)
+    # Complementarity: distance of a bounded asset from its bound times its multiplier.
+    gap = np.abs(w - np.where(side > 0.0, lo, hi))
+    complementarity = float((np.where(side != 0.0, gap, 0.0) * abs_g).max())
+    return max(worst_g / scale, primal / w_scale, complementarity / (scale * w_scale))
 
 
 @dataclass(frozen=True, eq=False)
@@ -487,11 +502,12 @@ def solve_box_problem(problem: BoxProblem, start: StateArray,
                       before_fallback: Callable[[], None] | None = None) -> BoxSolution:
     """Solve from a warm-start active set; primal active set if the fast iteration fails
     (``before_fallback`` runs first: the place for input checks only failures need)."""
-    start = start.copy()
-    start[problem.fixed] = FIXED
+    if problem.any_fixed:
+        start = start.copy()
+        start[problem.fixed] = FIXED
     if not (start == FREE).any():
-        movable = np.flatnonzero(~problem.fixed)
-        start[movable[0]] = FREE
+        start = start.copy()
+        start[int(np.flatnonzero(~problem.fixed)[0])] = FREE
     quick = _pdas(problem, start, max_iter=min(4 * problem.n + 10, 200))
     if quick is not None:
         face, state, iterations = quick

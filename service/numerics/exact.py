@@ -9,14 +9,14 @@ from __future__ import annotations
 import numpy as np
 import numpy.typing as npt
 
-from service.numerics.active_set import (BoxProblem, min_variance_kkt_residual, solve_box_problem,
-                                         tangency_kkt_residual)
+from service.numerics.active_set import (KKT_TOLERANCE, BoxProblem, min_variance_kkt_residual,
+                                         solve_box_problem, tangency_kkt_residual)
 from service.numerics.closed_form import ClosedForm
 from service.numerics.errors import InputError
 from service.numerics.inputs import MixInputs, budget_tolerance
-from service.numerics.max_return import FIXED, FREE, LOWER, UPPER, max_return_vertex
+from service.numerics.max_return import FREE, max_return_vertex
 from service.numerics.portfolio import Portfolio, portfolio_from_weights
-from service.numerics.warm_start import tangency_start, min_variance_start
+from service.numerics.warm_start import min_variance_start, tangency_start
 
 __all__ = ["tangency", "min_variance", "only_feasible_weights"]
 
@@ -47,14 +47,6 @@ def _require_positive_excess(inputs: MixInputs, best_return: float) -> None:
                          f"best expected return {best_return:.6g}")
 
 
-def _state_for(w: FloatArray, inputs: MixInputs) -> npt.NDArray[np.int8]:
-    state = np.full(inputs.n, FREE, dtype=np.int8)
-    state[w == inputs.lower] = LOWER
-    state[w == inputs.upper] = UPPER
-    state[inputs.lower == inputs.upper] = FIXED
-    return state
-
-
 def tangency(inputs: MixInputs) -> tuple[Portfolio, float]:
     """The exact maximum-Sharpe fully invested portfolio and its KKT residual.
 
@@ -64,7 +56,7 @@ def tangency(inputs: MixInputs) -> tuple[Portfolio, float]:
     only = only_feasible_weights(inputs)
     if only is not None:
         _require_positive_excess(inputs, float(inputs.expected_returns @ only))
-        state = _state_for(only, inputs)
+        # The only feasible point is optimal; what remains to check is the budget.
         residual = abs(float(only.sum()) - 1.0)
         return portfolio_from_weights(inputs, only, "only_feasible"), residual
     excess = inputs.expected_returns - inputs.risk_free_rate
@@ -103,6 +95,5 @@ def min_variance(inputs: MixInputs) -> Portfolio:
 
 
 def _check_residual(residual: float, what: str) -> None:
-    from service.numerics.active_set import KKT_TOLERANCE
     if not residual <= KKT_TOLERANCE:
         raise RuntimeError(f"{what} failed its KKT check: residual {residual:.3g} > {KKT_TOLERANCE:g}")

@@ -60,3 +60,14 @@ class TestRouting:
     def test_no_contribution(self) -> None:
         split = route_contribution(risky_held=1000, contribution=0, risky_target=3000)
         assert (split.risky, split.safe) == (0, 0)
+
+
+def test_small_and_vector_apportionment_agree() -> None:
+    # The plain-Python path (<= 64 assets) and the numpy path must apportion identically.
+    from service.allocation.money import _split_small
+
+    rng = np.random.default_rng(5)
+    for n in (65, 120, 300):
+        for total in (0, 1, 999, 10**9 + 7):
+            w = rng.dirichlet(np.ones(n))
+            assert split_units(total, w).tolist() == _split_small(total, w.tolist())

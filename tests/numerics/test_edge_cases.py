@@ -109,3 +109,18 @@ def test_singular_face_is_reported_not_guessed() -> None:
     problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper,
                          inputs.expected_returns - inputs.risk_free_rate)
     assert problem.solve_face(np.full(5, -1, dtype=np.int8)) is None  # no free asset: no face to solve
+
+
+@pytest.mark.parametrize(("n", "case", "seed"), [(60, "capped", 7), (150, "boxed", 8), (200, "long_only", 9)])
+def test_reported_residual_holds_against_a_dense_recomputation(n: int, case: str, seed: int) -> None:
+    # The iteration carries S c incrementally; recompute S w densely (numpy) and re-check.
+    inputs = scenario(n, seed, case=case)
+    best, residual = tangency(inputs)
+    w = best.weights
+    state = np.full(n, FREE, dtype=np.int8)
+    state[w == inputs.lower] = -1
+    state[w == inputs.upper] = 1
+    excess = inputs.expected_returns - inputs.risk_free_rate
+    dense = tangency_kkt_residual(inputs.covariance, excess, inputs.lower, inputs.upper, w, state, 0.0)
+    assert residual <= 1e-10 and dense <= 1e-10
+    assert_allclose(best.volatility ** 2, w @ inputs.covariance @ w, rtol=1e-12)
