@@ -231,10 +231,13 @@ def bench_singles(server: Server, keys: dict[str, str], seconds: int, workdir: P
     )
     keyed = workdir / "single_keyed.lua"
     keyed.write_text(plain.read_text() + (
-        "counter = 0\n"
+        # Each wrk thread has its own Lua state: give each its own id so keys never collide.
+        "local threads = 0\n"
+        "function setup(thread) thread:set('tid', threads); threads = threads + 1 end\n"
+        "local counter = 0\n"
         "request = function()\n"
         "  counter = counter + 1\n"
-        '  wrk.headers["Idempotency-Key"] = string.format(\'"bench-%d-%d"\', math.random(1, 1000000000), counter)\n'
+        "  wrk.headers['Idempotency-Key'] = string.format('\"bench-%s-%d-%d\"', tid, os.time(), counter)\n"
         "  return wrk.format()\n"
         "end\n"
     ))

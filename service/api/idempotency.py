@@ -14,18 +14,18 @@
 
 from __future__ import annotations
 
+import asyncio
 import hashlib
 import re
+import time
 from dataclasses import dataclass
-from datetime import timedelta
 
 from typing import Annotated
 
 from fastapi import Header
-from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
-from service.store import IdempotencyCompletion, IdempotencyRecord, release, reserve
+from service.store import IdempotencyCompletion, KeyRelease, KeyReservation
 
 from .auth import Caller
 from .errors import ConflictError, ProblemError, Unprocessable
@@ -73,14 +73,11 @@ async def claim(state: AppState, caller: Caller, plan_id: str, header: str | Non
     if key is None:
         return None
     fingerprint = hashlib.sha256(raw).hexdigest()
-    retention = timedelta(hours=state.settings.idempotency_retention_hours)
+    retention = state.settings.idempotency_retention_hours * 3600
 
-    def reserve_now() -> IdempotencyRecord | None:
-        with state.db.writing() as s:
-            return reserve(s, plan_id=plan_id, key_id=caller.key_id, idempotency_key=key,
-                           fingerprint=fingerprint, retention=retention)
-
-    standing = await run_in_threadpool(reserve_now)
+    # The log writer runs the reservation in its next group transaction (see store.idempotency).
+    operation = KeyReservation(plan_id, caller.key_id, key, fingerprint, int(time.time()), retention)
+    standing = await asyncio.wrap_future(state.db.writer.submit_key_operation(operation))
     if standing is None:
         return Claim(plan_id, caller.key_id, key)
     if standing.fingerprint != fingerprint:
@@ -98,8 +95,5 @@ async def claim(state: AppState, caller: Caller, plan_id: str, header: str | Non
 
 
 async def give_up(state: AppState, owned: Claim) -> None:
-    def release_now() -> None:
-        with state.db.writing() as s:
-            release(s, plan_id=owned.plan_id, key_id=owned.key_id, idempotency_key=owned.key)
-
-    await run_in_threadpool(release_now)
+    release = KeyRelease(owned.plan_id, owned.key_id, owned.key)
+    await asyncio.wrap_future(state.db.writer.submit_key_operation(release))

@@ -10,10 +10,11 @@
 Each face (a partition of the assets into free / at lower / at upper / fixed) is one
 equality-constrained KKT solve: a Cholesky factor of the free block and a 3x3 (or
 scalar) system for the multipliers. A primal-dual active-set iteration moves every
-violator at once; if it cycles or meets a singular face, a primal active-set method
-(one change per step, Bland's rule after a degenerate step) finishes from a feasible
-vertex. The answer is accepted only after a scale-free KKT check (stationarity,
-primal feasibility, dual signs, complementarity) to 1e-10.
+primal violator to its bound and releases the most wrong-signed bound multipliers (at
+most max(6, free count) per step); if it cycles or meets a singular face, a primal
+active-set method (one change per step, Bland's rule after a degenerate step) finishes
+from a feasible vertex. The answer is accepted only after a scale-free KKT check
+(stationarity, primal feasibility, dual signs, complementarity) to 1e-10.
 """
 
 from __future__ import annotations
@@ -217,7 +218,7 @@ _SIDE = np.array([1.0, 0.0, -1.0, 0.0])
 # At most this many (or as many as are free, if more) bounded assets are released per
 # iteration: releasing every wrong-signed multiplier at once overshoots badly when many
 # assets start at a bound, and the next iterations then mostly undo it.
-_RELEASE_FLOOR = 16
+_RELEASE_FLOOR = 6
 
 
 def _solve3(m00: float, m01: float, m02: float, m10: float, m11: float, m12: float,

@@ -7,7 +7,7 @@ PostgreSQL are both supported through the same calls.
 from service.store.chain import GENESIS_HASH, verify_chain
 from service.store.database import Database
 from service.store.errors import Conflict
-from service.store.idempotency import IdempotencyRecord, purge_expired, release, reserve
+from service.store.idempotency import IdempotencyRecord, KeyRelease, KeyReservation
 from service.store.key_secrets import secret_hash, secret_matches
 from service.store.records import (
     BadRow,
@@ -42,6 +42,8 @@ __all__ = [
     "Database",
     "IdempotencyCompletion",
     "IdempotencyRecord",
+    "KeyRelease",
+    "KeyReservation",
     "KeyRecord",
     "LogBatch",
     "LogStream",
@@ -55,9 +57,6 @@ __all__ = [
     "insert_mix",
     "insert_plan",
     "list_allocations",
-    "purge_expired",
-    "release",
-    "reserve",
     "secret_hash",
     "secret_matches",
     "set_active_version",

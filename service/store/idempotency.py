@@ -1,24 +1,20 @@
-"""Idempotency-Key reservations (draft-ietf-httpapi-idempotency-key-header).
+"""Idempotency-Key reservations (draft-ietf-httpapi-idempotency-key-header), run by the writer.
 
 A request that carries a key first reserves (plan, API key, Idempotency-Key) with the
-fingerprint of its body. The reservation is an insert that does nothing on conflict, so of
-many simultaneous requests exactly one owns the key; the others find it in flight or, once
-the owner's answer is committed, done. The owner's answer is written into the reservation by
-the chain writer in the same transaction as the log rows (see IdempotencyCompletion), so an
-answer is replayable exactly when it was logged. Expired reservations are replaced.
+fingerprint of its body. Reserving is a job for the chain writer, like appending: on SQLite a
+second writer would fight the log writer for the database lock (and wait in SQLite's busy
+handler for tens of milliseconds), and in the writer's transaction the reservation is one more
+statement of a group commit. The insert does nothing on conflict, so of many simultaneous
+requests exactly one owns the key; the others find it in flight or, once the owner's answer is
+committed with its log rows (IdempotencyCompletion), done. Expired reservations are replaced.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import datetime, timedelta
-
-from sqlalchemy import delete, select
-from sqlalchemy.orm import Session
+from typing import Any
 
 from service.store.records import IdempotencyCompletion
-from service.store.repository import _insert
-from service.store.schema import IdempotencyKey, utc_now
 
 IN_FLIGHT = "in_flight"
 DONE = "done"
@@ -30,70 +26,75 @@ class IdempotencyRecord:
     state: str
     status_code: int | None
     response: str | None
-    expires_at: datetime
+    expires_at: int  # unix seconds
 
 
-def reserve(
-    s: Session,
-    *,
-    plan_id: str,
-    key_id: str,
-    idempotency_key: str,
-    fingerprint: str,
-    retention: timedelta,
-) -> IdempotencyRecord | None:
-    """None when this request now owns the key; otherwise the standing reservation."""
-    now = utc_now()
-    where = (
-        (IdempotencyKey.plan_id == plan_id)
-        & (IdempotencyKey.key_id == key_id)
-        & (IdempotencyKey.idempotency_key == idempotency_key)
-    )
-    s.execute(delete(IdempotencyKey).where(where & (IdempotencyKey.expires_at <= now)))
-    stmt = (
-        _insert(s, IdempotencyKey)
-        .values(
-            plan_id=plan_id,
-            key_id=key_id,
-            idempotency_key=idempotency_key,
-            fingerprint=fingerprint,
-            state=IN_FLIGHT,
-            status_code=None,
-            response=None,
-            created_at=now,
-            expires_at=now + retention,
-        )
-        .on_conflict_do_nothing()
-        .execution_options(preserve_rowcount=True)
-    )
-    if s.execute(stmt).rowcount == 1:  # type: ignore[attr-defined]
-        return None
-    row = s.execute(select(IdempotencyKey).where(where)).scalar_one()
-    return IdempotencyRecord(row.fingerprint, row.state, row.status_code, row.response, row.expires_at)
+@dataclass(frozen=True)
+class KeyReservation:
+    plan_id: str
+    key_id: str
+    idempotency_key: str
+    fingerprint: str
+    now: int  # unix seconds
+    retention_seconds: int
 
 
-def release(s: Session, *, plan_id: str, key_id: str, idempotency_key: str) -> None:
+@dataclass(frozen=True)
+class KeyRelease:
     """Give up an in-flight reservation whose request failed before anything was logged."""
-    s.execute(
-        delete(IdempotencyKey).where(
-            (IdempotencyKey.plan_id == plan_id)
-            & (IdempotencyKey.key_id == key_id)
-            & (IdempotencyKey.idempotency_key == idempotency_key)
-            & (IdempotencyKey.state == IN_FLIGHT)
-        )
-    )
+
+    plan_id: str
+    key_id: str
+    idempotency_key: str
 
 
-def purge_expired(s: Session) -> int:
-    result = s.execute(delete(IdempotencyKey).where(IdempotencyKey.expires_at <= utc_now()))
-    return int(result.rowcount)  # type: ignore[attr-defined]
+KeyOperation = KeyReservation | KeyRelease
 
+_WHERE = "plan_id = {p} AND key_id = {p} AND idempotency_key = {p}"
+_DROP_EXPIRED = "DELETE FROM idempotency_keys WHERE " + _WHERE + " AND expires_at <= {p}"
+_INSERT = (
+    "INSERT INTO idempotency_keys (plan_id, key_id, idempotency_key, fingerprint, state, "
+    "status_code, response, created_at, expires_at) VALUES ({p}, {p}, {p}, {p}, 'in_flight', "
+    "NULL, NULL, {p}, {p}) ON CONFLICT DO NOTHING"
+)
+_STANDING = (
+    "SELECT fingerprint, state, status_code, response, expires_at FROM idempotency_keys WHERE "
+    + _WHERE
+)
+_RELEASE = "DELETE FROM idempotency_keys WHERE " + _WHERE + " AND state = 'in_flight'"
+_PURGE = "DELETE FROM idempotency_keys WHERE expires_at <= {p}"
 
 COMPLETE_SQL = (
     "UPDATE idempotency_keys SET state = 'done', status_code = {p}, response = {p} "
-    "WHERE plan_id = {p} AND key_id = {p} AND idempotency_key = {p} AND state = 'in_flight'"
+    "WHERE " + _WHERE + " AND state = 'in_flight'"
 )
 
 
 def completion_parameters(c: IdempotencyCompletion) -> tuple[int, str, str, str, str]:
     return (c.status_code, c.response, c.plan_id, c.key_id, c.idempotency_key)
+
+
+def run(cursor: Any, op: KeyOperation, placeholder: str) -> IdempotencyRecord | None:
+    """Execute one operation on a DBAPI cursor inside the writer's transaction.
+
+    For a reservation: None when the caller now owns the key, else the standing reservation.
+    """
+    key = (op.plan_id, op.key_id, op.idempotency_key)
+    if isinstance(op, KeyRelease):
+        cursor.execute(_RELEASE.format(p=placeholder), key)
+        return None
+    cursor.execute(_DROP_EXPIRED.format(p=placeholder), (*key, op.now))
+    cursor.execute(
+        _INSERT.format(p=placeholder),
+        (*key, op.fingerprint, op.now, op.now + op.retention_seconds),
+    )
+    if cursor.rowcount == 1:
+        return None
+    cursor.execute(_STANDING.format(p=placeholder), key)
+    fingerprint, state, status_code, response, expires_at = cursor.fetchone()
+    return IdempotencyRecord(fingerprint, state, status_code, response, expires_at)
+
+
+def purge(cursor: Any, now: int, placeholder: str) -> int:
+    cursor.execute(_PURGE.format(p=placeholder), (now,))
+    return int(cursor.rowcount)

@@ -165,5 +165,5 @@ class IdempotencyKey(Base):
     state: Mapped[str] = mapped_column(String())  # "in_flight" | "done"
     status_code: Mapped[int | None] = mapped_column(Integer, nullable=True)
     response: Mapped[str | None] = mapped_column(Text, nullable=True)
-    created_at: Mapped[datetime] = mapped_column(UtcDateTime)
-    expires_at: Mapped[datetime] = mapped_column(UtcDateTime)
+    created_at: Mapped[int] = mapped_column(BigInteger)  # unix seconds
+    expires_at: Mapped[int] = mapped_column(BigInteger)

@@ -24,14 +24,23 @@ import threading
 import time
 from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from sqlalchemy import Engine
 from sqlalchemy.exc import DBAPIError
 
 from service.store.chain import GENESIS_HASH, SEPARATOR, link_hash
-from service.store.idempotency import COMPLETE_SQL, completion_parameters
+from service.store.idempotency import (
+    COMPLETE_SQL,
+    IdempotencyRecord,
+    KeyOperation,
+    KeyRelease,
+    KeyReservation,
+    completion_parameters,
+    purge,
+)
+from service.store.idempotency import run as run_key_operation
 from service.store.records import LogBatch, LogStream
 from service.store.wal_checkpoints import WalCheckpointer
 
@@ -44,11 +53,20 @@ _COPY_MIN_ROWS = 2_000
 _SQLITE_WRITER_CACHE_KIB = 64 * 1024
 
 
+# How often the writer drops expired Idempotency-Key reservations, in seconds.
+_PURGE_EVERY_SECONDS = 600.0
+
+
 @dataclass(frozen=True)
 class _Job:
-    batch: LogBatch | LogStream
+    batch: LogBatch | LogStream | KeyOperation
     size: int
-    future: Future[None]
+    future: Future[Any]
+    outcome: list[Any] = field(default_factory=list)
+
+    @property
+    def logs(self) -> bool:
+        return not isinstance(self.batch, KeyReservation | KeyRelease)
 
     @property
     def alone(self) -> bool:
@@ -116,6 +134,9 @@ class _Chains:
 
     def rows(self, jobs: Iterable[_Job]) -> Iterator[tuple[Any, ...]]:
         for job in jobs:
+            if not job.logs:
+                continue
+            assert isinstance(job.batch, LogBatch | LogStream)
             plan_id = job.batch.plan_id
             seq, prev_hash = self.heads[plan_id]
             for row in _links(job.batch, seq, prev_hash):
@@ -128,6 +149,8 @@ def _completions(jobs: Iterable[_Job]) -> list[tuple[int, str, str, str, str]]:
     """Idempotency answers to store with these rows (a stream's arrives after its last row)."""
     found = []
     for job in jobs:
+        if not isinstance(job.batch, LogBatch | LogStream):
+            continue
         completes = job.batch.completion()
         if completes is not None:
             found.append(completion_parameters(completes))
@@ -155,6 +178,7 @@ class ChainWriter:
         self._running = False
         self._connection: Any = None  # a pooled DBAPI connection, owned by the writer thread
         self._checkpointer = WalCheckpointer(engine) if self._dialect == "sqlite" else None
+        self._last_purge = 0.0
 
     @property
     def running(self) -> bool:
@@ -210,6 +234,15 @@ class ChainWriter:
             if not self._running:
                 raise RuntimeError("the chain writer is not running (Database.start() not called?)")
             self._queue.put(_Job(stream, stream.size, future))
+        return future
+
+    def submit_key_operation(self, operation: KeyOperation) -> Future[IdempotencyRecord | None]:
+        """Run an Idempotency-Key reservation or release in the writer's next transaction."""
+        future: Future[IdempotencyRecord | None] = Future()
+        with self._lock:
+            if not self._running:
+                raise RuntimeError("the chain writer is not running (Database.start() not called?)")
+            self._queue.put(_Job(operation, 0, future))
         return future
 
     def append(self, batch: LogBatch) -> None:
@@ -319,10 +352,10 @@ class ChainWriter:
                 except Exception as job_error:
                     job.future.set_exception(job_error)
                 else:
-                    job.future.set_result(None)
+                    job.future.set_result(job.outcome[0] if job.outcome else None)
             return
         for job in group:
-            job.future.set_result(None)
+            job.future.set_result(job.outcome[0] if job.outcome else None)
 
     def _write_retrying(self, jobs: list[_Job]) -> None:
         try:
@@ -382,9 +415,19 @@ class ChainWriter:
         except Exception:
             pass
 
+    def _key_operations(self, cursor: Any, jobs: list[_Job], placeholder: str) -> None:
+        for job in jobs:
+            if not job.logs:
+                job.outcome[:] = [run_key_operation(cursor, job.batch, placeholder)]  # type: ignore[arg-type]
+        now = time.time()
+        if now - self._last_purge > _PURGE_EVERY_SECONDS:
+            purge(cursor, int(now), placeholder)
+            self._last_purge = now
+
     def _write_sqlite(self, dbapi: Any, jobs: list[_Job]) -> None:
         dbapi.execute("BEGIN IMMEDIATE")
-        plan_ids = sorted({job.batch.plan_id for job in jobs})
+        self._key_operations(dbapi.cursor(), jobs, "?")
+        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})  # type: ignore[union-attr]
         heads: dict[str, tuple[int, str]] = {}
         for plan_id in plan_ids:
             found = dbapi.execute(
@@ -410,8 +453,9 @@ class ChainWriter:
             self._checkpointer.committed(sum(job.size for job in jobs))
 
     def _write_postgresql(self, dbapi: Any, jobs: list[_Job]) -> None:
-        plan_ids = sorted({job.batch.plan_id for job in jobs})
+        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})  # type: ignore[union-attr]
         with dbapi.cursor() as cursor:
+            self._key_operations(cursor, jobs, "%s")
             heads = self._lock_heads_postgresql(cursor, plan_ids)
             missing = [p for p in plan_ids if p not in heads]
             if missing:

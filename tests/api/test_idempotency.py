@@ -78,7 +78,7 @@ async def test_expired_key_is_a_new_request(world: World, new_plan_id: str) -> N
     headers = keys["portal"] | {"Idempotency-Key": '"old"'}
     first = await world.client.post(url, json=BODY, headers=headers)
     with world.database.writing() as s:  # the retention period passes
-        s.execute(text("UPDATE idempotency_keys SET expires_at = created_at WHERE idempotency_key = 'old'"))
+        s.execute(text("UPDATE idempotency_keys SET expires_at = created_at - 1 WHERE idempotency_key = 'old'"))
     later = await world.client.post(url, json=BODY, headers=headers)
     assert later.status_code == 201 and later.json()["allocation_id"] != first.json()["allocation_id"]
     assert await logged(world, new_plan_id, keys) == 2

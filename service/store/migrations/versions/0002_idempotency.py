@@ -26,8 +26,10 @@ def upgrade() -> None:
         sa.Column("state", sa.String(), nullable=False),
         sa.Column("status_code", sa.Integer(), nullable=True),
         sa.Column("response", sa.Text(), nullable=True),
-        sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
-        sa.Column("expires_at", sa.DateTime(timezone=True), nullable=False),
+        # Unix seconds: the chain writer reads and writes these with raw driver calls on both
+        # dialects, and an integer compares the same way everywhere.
+        sa.Column("created_at", sa.BigInteger(), nullable=False),
+        sa.Column("expires_at", sa.BigInteger(), nullable=False),
         sa.ForeignKeyConstraint(
             ["plan_id"], ["plans.plan_id"], name="fk_idempotency_keys_plan_id_plans"
         ),
