@@ -53,19 +53,24 @@ def preference_texts(batch: BatchInput) -> list[str]:
     """Each member's preference as the single path echoes it (see api.allocating.preference_of)."""
     value, conf, horizon = numbers(batch.value), numbers(batch.confidence), numbers(batch.horizon)
     score = numbers(batch.value.astype(np.int64))
-    out: list[str] = []
-    kinds = batch.kind.tolist()
-    for i, k in enumerate(kinds):
-        if k == RISK_AVERSION:
-            out.append('{"risk_aversion":' + value[i] + "}")
-        elif k == TARGET_VOLATILITY:
-            out.append('{"target_volatility":' + value[i] + "}")
-        elif k == MAX_LOSS:
-            out.append('{"confidence":' + conf[i] + ',"horizon_years":' + horizon[i] + ',"max_loss":' + value[i] + "}")
-        elif k == RISK_SCORE:
-            out.append('{"risk_score":' + score[i] + "}")
+    out: list[str] = [""] * batch.size
+    for kind in np.unique(batch.kind).tolist():
+        rows = np.flatnonzero(batch.kind == kind).tolist()
+        if kind == RISK_AVERSION:
+            texts = ['{"risk_aversion":' + value[i] + "}" for i in rows]
+        elif kind == TARGET_VOLATILITY:
+            texts = ['{"target_volatility":' + value[i] + "}" for i in rows]
+        elif kind == MAX_LOSS:
+            texts = [
+                '{"confidence":' + conf[i] + ',"horizon_years":' + horizon[i] + ',"max_loss":' + value[i] + "}"
+                for i in rows
+            ]
+        elif kind == RISK_SCORE:
+            texts = ['{"risk_score":' + score[i] + "}" for i in rows]
         else:  # pragma: no cover - kinds are set by the reader
-            raise ValueError(f"unknown preference kind {k}")
+            raise ValueError(f"unknown preference kind {kind}")
+        for i, text in zip(rows, texts, strict=True):
+            out[i] = text
     return out
 
 
@@ -100,6 +105,9 @@ def record_texts(
         "plan_id": _json(ctx.plan_id),
     }
     routed = batch.risky_held is not None
+    limited = [orjson.dumps(name).decode() for name in LIMIT_NAMES]
+    if not routed:
+        return _plain_texts(ctx, allocation_ids, member_ids, batch, result, limited)
     parts = [
         '{"allocation_id":"%s","amount_minor":%s,"by_asset_minor":[%s],',
         '"contribution_minor":%s,"contribution_split_minor":[%s,%s],' if routed else "",
@@ -112,7 +120,6 @@ def record_texts(
         '"risky_fraction":%s,"split_minor":[%s,%s],"unconstrained_risky_fraction":%s,"volatility":%s}',
     ]
     template = "".join(parts)
-    limited = [orjson.dumps(name).decode() for name in LIMIT_NAMES]
     columns: list[Sequence[str]] = [
         allocation_ids,
         numbers(batch.total),
@@ -138,6 +145,45 @@ def record_texts(
         numbers(result.volatility),
     ]
     return [template % row for row in zip(*columns, strict=True)]
+
+
+def _plain_texts(
+    ctx: BatchContext,
+    allocation_ids: Sequence[str],
+    member_ids: Sequence[str],
+    batch: BatchInput,
+    result: BatchResult,
+    limited: list[str],
+) -> list[str]:
+    """Records of members without holdings: the same keys as the template above, written as one
+    f-string (a third faster than %-formatting 280,000 rows, which is most of a batch's text)."""
+    dump = lambda v: orjson.dumps(v).decode()  # noqa: E731
+    created = (
+        f'"created_at":{dump(ctx.created_at)},"currency":{dump(ctx.currency)},'
+        f'"disclosures_version":{dump(DISCLOSURES_VERSION)},'
+    )
+    form = f'"form":{dump(RECORD_FORM)},'
+    mix = f'"mix_content_hash":{dump(ctx.mix_content_hash)},"mix_version":{dump(ctx.mix_version)},"plan_id":{dump(ctx.plan_id)},'
+    return [
+        f'{{"allocation_id":"{a}","amount_minor":{b},"by_asset_minor":[{c}],{created}"expected_return":{d},'
+        f'{form}"limited_by":{e},"member_id":"{f}",{mix}"preference":{g},"risky_fraction":{h},'
+        f'"split_minor":[{i},{j}],"unconstrained_risky_fraction":{k},"volatility":{v}}}'
+        for a, b, c, d, e, f, g, h, i, j, k, v in zip(
+            allocation_ids,
+            numbers(batch.total),
+            number_rows(result.by_asset),
+            numbers(result.expected_return),
+            [limited[x] for x in result.limited.tolist()],
+            member_ids,
+            preference_texts(batch),
+            numbers(result.risky_fraction),
+            numbers(result.risky),
+            numbers(result.safe),
+            numbers(result.unconstrained),
+            numbers(result.volatility),
+            strict=True,
+        )
+    ]
 
 
 _FRACTIONS: dict[int, list[str]] = {}

@@ -94,20 +94,17 @@ def answer(prepared: PreparedBatch) -> bytes:
     y = numbers(result.risky_fraction)
     unconstrained = numbers(result.unconstrained)
     limited = [orjson.dumps(n).decode() for n in LIMIT_NAMES]
-    template = (
-        '{"allocation_id":"%s","member_id":"%s","risky_fraction":%s,"unconstrained_risky_fraction":%s,'
-        '"limited_by":%s,"amounts":{"risky":"%s","safe":"%s"}%s}'
-    )
     routed = [""] * len(y)
     if result.to_risky is not None and result.to_safe is not None:
         to_r, to_s = money_texts(result.to_risky, ctx.currency), money_texts(result.to_safe, ctx.currency)
         held = request.columns.risky_held
         assert held is not None
         for i in np.flatnonzero(held >= 0).tolist():
-            routed[i] = ',"contribution_split":{"risky":"%s","safe":"%s"}' % (to_r[i], to_s[i])
+            routed[i] = f',"contribution_split":{{"risky":"{to_r[i]}","safe":"{to_s[i]}"}}'
     rows = [
-        template % row
-        for row in zip(
+        f'{{"allocation_id":"{a}","member_id":"{m}","risky_fraction":{f},"unconstrained_risky_fraction":{u},'
+        f'"limited_by":{lb},"amounts":{{"risky":"{r}","safe":"{sf}"}}{c}}}'
+        for a, m, f, u, lb, r, sf, c in zip(
             allocation_ids, request.member_ids, y, unconstrained,
             [limited[c] for c in result.limited.tolist()], risky, safe, routed, strict=True,
         )

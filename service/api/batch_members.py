@@ -87,54 +87,60 @@ def read_batch(raw: bytes, currency: str, limit: int) -> BatchRequest:
 
 def _fast(members: list[Any], currency: str) -> tuple[list[str], BatchInput]:
     n = len(members)
-    for i, m in enumerate(members):
-        if type(m) is not dict or not m.keys() <= _MEMBER_KEYS or "holdings" in m or "contribution" in m:
-            raise _Unusual(i)
-    ids = [m.get("member_id") for m in members]
-    if not all(type(x) is str for x in ids) or not _IDS.fullmatch("\n".join(ids)):  # type: ignore[arg-type]
-        raise _Unusual(next((i for i, x in enumerate(ids) if type(x) is not str or not re.fullmatch(MEMBER_ID_PATTERN, x)), 0))
     kind = [0] * n
     value = [0.0] * n
     confidence = [0.0] * n
     horizon = [1.0] * n
+    ids: list[Any] = [None] * n
+    amounts: list[Any] = [None] * n
+    member_keys, loss_keys, single_kinds = _MEMBER_KEYS, _LOSS_KEYS, _SINGLE_KINDS
+    # One pass, type tests only; anything unusual hands the member to the strict model.
     for i, m in enumerate(members):
+        if type(m) is not dict or not m.keys() <= member_keys or "holdings" in m or "contribution" in m:
+            raise _Unusual(i)
+        ids[i] = m.get("member_id")
+        amounts[i] = m.get("amount")
         p = m.get("preference")
         if type(p) is not dict:
             raise _Unusual(i)
         if len(p) == 1:
             ((key, v),) = p.items()
-            k = _SINGLE_KINDS.get(key)
+            k = single_kinds.get(key)
             if k is None or not (type(v) is int or (type(v) is float and k != RISK_SCORE)):
                 raise _Unusual(i)
-            kind[i], value[i] = k, v
-        elif "max_loss" in p and "confidence" in p and p.keys() <= _LOSS_KEYS:
+            kind[i] = k
+            value[i] = v
+        elif "max_loss" in p and "confidence" in p and p.keys() <= loss_keys:
             loss, conf, years = p["max_loss"], p["confidence"], p.get("horizon_years", 1.0)
-            if not all(type(x) is int or type(x) is float for x in (loss, conf, years)):
+            if not (type(loss) in (int, float) and type(conf) in (int, float) and type(years) in (int, float)):
                 raise _Unusual(i)
             kind[i], value[i], confidence[i], horizon[i] = MAX_LOSS, loss, conf, years
         else:
             raise _Unusual(i)
-    total = _amounts([m.get("amount") for m in members], currency)
+    if not all(type(x) is str for x in ids) or not _IDS.fullmatch("\n".join(ids)):
+        raise _Unusual(next((i for i, x in enumerate(ids) if type(x) is not str or not re.fullmatch(MEMBER_ID_PATTERN, x)), 0))
     columns = BatchInput(
         np.array(kind, dtype=np.int8),
         np.array(value, dtype=float),
         np.array(confidence, dtype=float),
         np.array(horizon, dtype=float),
-        total,
+        _amounts(amounts, currency),
     )
-    return ids, columns  # type: ignore[return-value]
+    return ids, columns
 
 
 def _amounts(values: list[Any], currency: str) -> np.ndarray:
-    """Plain decimal strings in one vectorised pass; anything else member by member."""
+    """Plain decimal strings in one vectorised pass; anything else member by member.
+
+    The pattern admits at most 15 significant digits (whole digits + the currency's decimals),
+    which a double holds exactly, so parsing as float and scaling by 10^exponent gives the
+    exact minor units.
+    """
     exponent = minor_exponent(currency)
-    digits = r"\d{1,15}" + (rf"(?:\.\d{{1,{exponent}}})?" if exponent else "")
+    whole = 15 - exponent
+    digits = rf"\d{{1,{whole}}}" + (rf"(?:\.\d{{1,{exponent}}})?" if exponent else "")
     if all(type(v) is str for v in values) and re.fullmatch(f"(?:{digits}\n)*{digits}", "\n".join(values)):
-        text = np.array(values)  # fixed-width unicode: the string ufuncs have loops for it
-        whole, _, frac = np.strings.partition(text, ".")
-        units = whole.astype(np.int64) * 10**exponent
-        if exponent:
-            units += np.strings.ljust(frac, exponent, "0").astype(np.int64)
+        units = np.rint(np.array(values, dtype=np.float64) * 10**exponent).astype(np.int64)
         if (units > MAX_MINOR_UNITS).any():
             i = int(np.flatnonzero(units > MAX_MINOR_UNITS)[0])
             raise AllocationError(f"members[{i}].amount", "is larger than this service accepts")

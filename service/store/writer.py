@@ -19,6 +19,7 @@ replicas sharing one database still build one consistent chain per plan.
 
 from __future__ import annotations
 
+import hashlib
 import queue
 import threading
 import time
@@ -103,26 +104,23 @@ def _check_batch(batch: LogBatch) -> int:
 def _links(
     batch: LogBatch | LogStream, seq: int, prev_hash: str
 ) -> Iterator[tuple[str, int, str, str, str, str, str, str, str]]:
-    """The batch's rows with seq and hashes, continuing the chain from (seq, prev_hash)."""
+    """The batch's rows with seq and hashes, continuing the chain from (seq, prev_hash).
+
+    The text hashed is exactly chain.link_hash's (a test holds them equal); it is written out
+    here with the batch's constant fields joined once, since this loop runs once per row.
+    """
     plan_id = batch.plan_id
     mix_version = batch.mix_version
     created_at = batch.created_at
+    sep = SEPARATOR
+    sha256 = hashlib.sha256
     for allocation_id, member_id, body in batch.triples():
         seq += 1
-        row_hash = link_hash(
-            prev_hash, plan_id, seq, allocation_id, member_id, mix_version, created_at, body
-        )
-        yield (
-            plan_id,
-            seq,
-            allocation_id,
-            member_id,
-            mix_version,
-            created_at,
-            body,
-            prev_hash,
-            row_hash,
-        )
+        row_hash = sha256(
+            f"{prev_hash}{sep}{plan_id}{sep}{seq}{sep}{allocation_id}{sep}{member_id}{sep}"
+            f"{mix_version}{sep}{created_at}{sep}{body}".encode()
+        ).hexdigest()
+        yield (plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash)
         prev_hash = row_hash
 
 

@@ -221,3 +221,16 @@ def test_removed_chain_head(database: Database, plan_id: str, chain: list[Any]) 
     assert bad is not None
     assert (bad.seq, bad.allocation_id) == (1, chain[0].allocation_id)
     assert "chain head" in bad.reason
+
+
+def test_writer_hashes_links_exactly_as_link_hash() -> None:
+    # The writer's per-row hashing is an unrolled copy of link_hash; both must give one text.
+    from service.store.chain import link_hash
+    from service.store.records import LogBatch
+    from service.store.writer import _links
+
+    batch = LogBatch("plan-a", "v1", "2026-12-01T00:00:00.000001Z", ["al_1", "al_2"], ["m-1", "m-2"], ['{"a":1}', '{"b":2}'])
+    rows = list(_links(batch, 41, "f" * 64))
+    first = link_hash("f" * 64, "plan-a", 42, "al_1", "m-1", "v1", "2026-12-01T00:00:00.000001Z", '{"a":1}')
+    second = link_hash(first, "plan-a", 43, "al_2", "m-2", "v1", "2026-12-01T00:00:00.000001Z", '{"b":2}')
+    assert [r[8] for r in rows] == [first, second] and rows[1][7] == first
