@@ -134,7 +134,15 @@ def record_texts(
         assert batch.risky_held is not None
         safe_held = batch.total - batch.contribution - batch.risky_held  # type: ignore[operator]
         columns += [numbers(batch.risky_held), numbers(safe_held)]
-    columns += [
+    columns += _tail_columns(member_ids, batch, result, limited)
+    return [template % row for row in zip(*columns, strict=True)]
+
+
+def _tail_columns(
+    member_ids: Sequence[str], batch: BatchInput, result: BatchResult, limited: list[str]
+) -> list[Sequence[str]]:
+    """The columns from limited_by to volatility, in the records' key order."""
+    return [
         [limited[c] for c in result.limited.tolist()],
         member_ids,
         preference_texts(batch),
@@ -144,7 +152,6 @@ def record_texts(
         numbers(result.unconstrained),
         numbers(result.volatility),
     ]
-    return [template % row for row in zip(*columns, strict=True)]
 
 
 def _plain_texts(
@@ -173,14 +180,7 @@ def _plain_texts(
             numbers(batch.total),
             number_rows(result.by_asset),
             numbers(result.expected_return),
-            [limited[x] for x in result.limited.tolist()],
-            member_ids,
-            preference_texts(batch),
-            numbers(result.risky_fraction),
-            numbers(result.risky),
-            numbers(result.safe),
-            numbers(result.unconstrained),
-            numbers(result.volatility),
+            *_tail_columns(member_ids, batch, result, limited),
             strict=True,
         )
     ]
