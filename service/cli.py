@@ -43,9 +43,10 @@ def _demo(settings: Settings, host: str, port: int) -> None:
         set_active_version(s, plan.plan_id, DEMO_MIX["version"])
     secrets_by_role = {}
     with db.writing() as s:
-        for role in ("committee", "portal"):
+        for role in ("committee", "portal", "operator"):
             key_id, secret = new_secret()
-            insert_key(s, key_id=key_id, plan_id=plan.plan_id, role=role, secret_hash=secret_hash(secret))
+            scope = None if role == "operator" else plan.plan_id
+            insert_key(s, key_id=key_id, plan_id=scope, role=role, secret_hash=secret_hash(secret))
             secrets_by_role[role] = secret
     db.close()
     t = doc["tangency"]
@@ -58,8 +59,7 @@ def _demo(settings: Settings, host: str, port: int) -> None:
     print(f"tangency    E[r] {t['expected_return']:.4f}  vol {t['volatility']:.4f}  Sharpe {t['sharpe_ratio']:.4f}")
     print(f"committee key  {secrets_by_role['committee']}")
     print(f"portal key     {secrets_by_role['portal']}")
-    if settings.bootstrap_operator_key:
-        print("operator key   (MIXLINE_BOOTSTRAP_OPERATOR_KEY)")
+    print(f"operator key   {secrets_by_role['operator']}  (demo only: every plan)")
     print("\ntry:")
     print(f"  curl -s -X POST {base}/v1/plans/{plan.plan_id}/allocations \\\n"
           f"    -H 'Authorization: Bearer {secrets_by_role['portal']}' -H 'Content-Type: application/json' \\\n"
