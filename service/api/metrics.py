@@ -39,6 +39,7 @@ class MetricsMiddleware:
     def __init__(self, app: ASGIApp, metrics: Metrics) -> None:
         self.app = app
         self.metrics = metrics
+        self._children: dict[tuple[str, str, int], tuple[Any, Any]] = {}
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -57,7 +58,14 @@ class MetricsMiddleware:
             await self.app(scope, receive, record)
         finally:
             route: Any = scope.get("route")
-            template = getattr(route, "path", "unmatched")
-            method = scope.get("method", "")
-            self.metrics.requests.labels(method, template, str(status)).inc()
-            self.metrics.latency.labels(method, template).observe(time.perf_counter() - start)
+            key = (scope.get("method", ""), getattr(route, "path", "unmatched"), status)
+            children = self._children.get(key)
+            if children is None:
+                # labels() takes a lock and builds a key each time; the children never change.
+                method, template, code = key
+                children = self._children[key] = (
+                    self.metrics.requests.labels(method, template, str(code)),
+                    self.metrics.latency.labels(method, template),
+                )
+            children[0].inc()
+            children[1].observe(time.perf_counter() - start)

@@ -11,8 +11,8 @@ Each face (a partition of the assets into free / at lower / at upper / fixed) is
 equality-constrained KKT solve: a Cholesky factor of the free block and a 3x3 (or
 scalar) system for the multipliers. A primal-dual active-set iteration moves every
 primal violator to its bound and releases the most wrong-signed bound multipliers (at
-most max(6, free count) per step); if it cycles or meets a singular face, a primal
-active-set method (one change per step, Bland's rule after a degenerate step) finishes
+most max(6, free count) per step), restarted once from the all-free face; if it still
+cycles or meets a singular face, a primal active-set method (one change per step, Bland's rule after a degenerate step) finishes
 from a feasible vertex. The answer is accepted only after a scale-free KKT check
 (stationarity, primal feasibility, dual signs, complementarity) to 1e-10.
 """
@@ -502,15 +502,27 @@ def _finish(problem: BoxProblem, face: Face, state: StateArray, sw: FloatArray |
 def solve_box_problem(problem: BoxProblem, start: StateArray,
                       before_fallback: Callable[[], None] | None = None) -> BoxSolution:
     """Solve from a warm-start active set; primal active set if the fast iteration fails
-    (``before_fallback`` runs first: the place for input checks only failures need)."""
+    (``before_fallback`` runs first: the place for input checks only failures need).
+
+    The primal-dual iteration is tried twice: from ``start``, then restarted from the face
+    with every asset free. A greedy start with few free assets and many binding caps can
+    make the iteration swap a handful of assets back and forth (it releases at most
+    max(6, f) per step) or reach a homogenised face with t <= 0; from the all-free face it
+    only has to move assets onto bounds, and one Cholesky of the full matrix is still far
+    cheaper than the primal search's one refactorisation per working-set change.
+    """
     if problem.any_fixed:
         start = start.copy()
         start[problem.fixed] = FIXED
     if not (start == FREE).any():
         start = start.copy()
         start[int(np.flatnonzero(~problem.fixed)[0])] = FREE
-    quick = _pdas(problem, start, max_iter=min(4 * problem.n + 10, 200))
-    if quick is not None:
+    max_iter = min(4 * problem.n + 10, 200)
+    all_free = np.where(problem.fixed, FIXED, FREE).astype(np.int8)
+    for first in (start, all_free):
+        quick = _pdas(problem, first, max_iter=max_iter)
+        if quick is None:
+            continue
         face, state, iterations = quick
         # The iteration's reduced gradient is S w - a e - b 1 in weight units.
         sw = face.grad + face.beta
