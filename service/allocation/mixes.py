@@ -43,8 +43,9 @@ def canonical_inputs(
             for a in assets
         ],
         "risk_free_rate": float(risk_free_rate),
-        "correlation": None if correlation is None else [[float(x) for x in row] for row in correlation],
-        "covariance": None if covariance is None else [[float(x) for x in row] for row in covariance],
+        # The schema hands over floats already (strict, finite); the lists are taken as they are.
+        "correlation": None if correlation is None else [list(row) for row in correlation],
+        "covariance": None if covariance is None else [list(row) for row in covariance],
         "bounds": None
         if not bounds
         else {code: [float(lo), float(hi)] for code, (lo, hi) in sorted(bounds.items())},

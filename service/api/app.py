@@ -21,7 +21,7 @@ from .auth import BOOTSTRAP_KEY_ID
 from .errors import PROBLEM_MEDIA_TYPE, problem_response
 from .fastpath import AllocationFastPath
 from .metrics import Metrics, MetricsMiddleware
-from .schemas import AllocationIn, BatchIn, Problem
+from .schemas import AllocationIn, BatchIn, MixIn, Problem
 from .state import AppState
 
 EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
@@ -121,7 +121,7 @@ def install_openapi(app: FastAPI) -> None:
         components = doc.setdefault("components", {}).setdefault("schemas", {})
         # Models of the bodies that hot routes read themselves (see bodies.py), and the problem shape.
         _, defs = models_json_schema(
-            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation")],
+            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation"), (MixIn, "validation")],
             ref_template="#/components/schemas/{model}",
         )
         for name, schema in defs.get("$defs", {}).items():

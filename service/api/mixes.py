@@ -4,13 +4,14 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Query, Request
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
 from service.allocation import frontier_document
 from service.store import set_active_version
 
+from .bodies import parse_body, request_body_schema
 from .deps import CallerDep, StateDep
 from .errors import NotFound, Unprocessable
 from .responses import AUTHED, json_response, problems
@@ -24,10 +25,14 @@ READERS = ("committee", "portal")
 @router.post(
     "", status_code=201, response_model=MixOut, operation_id="publish_mix",
     responses={200: {"description": "Same version and content again: the first answer"}, **problems(*AUTHED, 409, 413)},
+    openapi_extra=request_body_schema("MixIn"),
 )
-async def publish_mix(plan_id: str, body: MixIn, caller: CallerDep, state: StateDep) -> Response:
+async def publish_mix(plan_id: str, request: Request, caller: CallerDep, state: StateDep) -> Response:
     caller.require(plan_id, "committee")
     plan = state.plan(plan_id)
+    # A 200-asset covariance is 40,000 numbers: pydantic's own JSON parser validates them in one
+    # pass, where FastAPI's body parameter (json.loads, then validation) took 16 ms.
+    body = parse_body(MixIn, await request.body())
     # Solving is CPU work: keep it off the event loop so other requests go on being answered.
     created, doc = await run_in_threadpool(state.mixes.publish, plan, body)
     return json_response(doc, 201 if created else 200)

@@ -21,9 +21,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-import scipy.linalg
+from scipy.linalg.blas import dger as _ger
+from scipy.linalg.lapack import dpotrf as _potrf
+from scipy.linalg.lapack import dpotri as _potri
 
-from service.numerics.active_set import BoxProblem, solve_box_problem
+from service.numerics.active_set import BoxProblem, BoxSolution, solve_box_problem
 from service.numerics.closed_form import ClosedForm
 from service.numerics.errors import InputError
 from service.numerics.inputs import MixInputs
@@ -41,7 +43,10 @@ FloatArray = npt.NDArray[np.float64]
 #: max expected return) - m0).
 UNBOUNDED_TOP_FACTOR = 1.5
 
-_REFRESH_EVERY = 32
+# Refactorise the free block after this many rank-one updates at the latest, and
+# earlier when the free rows of the reduced gradient drift above _DRIFT_RTOL of its scale.
+_REFRESH_EVERY = 256
+_DRIFT_RTOL = 1e-12
 _RETURN_RTOL = 1e-12
 
 
@@ -136,150 +141,175 @@ def _two_fund(inputs: MixInputs) -> Frontier:
     return Frontier(corner_returns=_frozen(weights @ mu), corner_weights=_frozen(weights), unbounded_above=True)
 
 
-class _FreeInverse:
-    """Inverse of S restricted to an ordered free set, kept by bordering and downdates."""
+class _PaddedInverse:
+    """Inverse of the free block S_FF, embedded in an n x n matrix that is zero outside F.
 
-    def __init__(self, s: FloatArray, free: list[int]) -> None:
+    Padding keeps every asset at its own row and column, so no step gathers or repacks a
+    block: adding or dropping an asset is one rank-one BLAS update in place (bordering
+    and the Schur downdate both are), and P x reads only the free entries of x.
+    """
+
+    def __init__(self, s: FloatArray, free: npt.NDArray[np.bool_]) -> None:
         self.s = s
-        self.free = list(free)
+        self.free = free.copy()
+        self.p: FloatArray = np.zeros((s.shape[0], s.shape[0]), order="F")
         self.updates = 0
-        self.inverse = self._fresh()
+        self.refresh()
 
-    def _fresh(self) -> FloatArray:
-        idx = np.asarray(self.free, dtype=np.intp)
-        block = self.s[np.ix_(idx, idx)]
-        factor = scipy.linalg.cho_factor(block, lower=True, check_finite=False)
-        inv: FloatArray = scipy.linalg.cho_solve(factor, np.eye(idx.size), check_finite=False)
-        return inv
+    def refresh(self) -> None:
+        """A fresh inverse from a Cholesky factor of the free block."""
+        idx = np.flatnonzero(self.free)
+        chol, info = _potrf(self.s[np.ix_(idx, idx)], lower=1, clean=1)
+        if info != 0:
+            raise RuntimeError(f"critical line met a singular free block (LAPACK info {info})")
+        inv, info = _potri(chol, lower=1)
+        if info != 0:
+            raise RuntimeError(f"critical line could not invert the free block (LAPACK info {info})")
+        self.p[:] = 0.0
+        self.p[np.ix_(idx, idx)] = np.tril(inv) + np.tril(inv, -1).T
+        self.updates = 0
 
     def add(self, j: int) -> None:
-        idx = np.asarray(self.free, dtype=np.intp)
-        col = self.s[idx, j]
-        z = self.inverse @ col
-        d = float(self.s[j, j] - col @ z)
-        self.free.append(j)
+        row = self.s[j]
+        z = self.p @ row
+        d = float(row[j] - row @ z)
+        self.free[j] = True
         self.updates += 1
-        if not d > 1e-14 * float(self.s[j, j]) or self.updates >= _REFRESH_EVERY:
-            self.inverse = self._fresh()
-            self.updates = 0
+        if not d > 1e-14 * float(row[j]) or self.updates >= _REFRESH_EVERY:
+            self.refresh()
             return
-        f = idx.size
-        new = np.empty((f + 1, f + 1))
-        new[:f, :f] = self.inverse + np.outer(z, z) / d
-        new[:f, f] = -z / d
-        new[f, :f] = -z / d
-        new[f, f] = 1.0 / d
-        self.inverse = new
+        # Bordering: with z_j = -1 (z_j is 0, j not yet free) the new inverse is P + z z'/d.
+        z[j] = -1.0
+        _ger(1.0 / d, z, z, a=self.p, overwrite_a=1)
 
     def remove(self, j: int) -> None:
-        p = self.free.index(j)
-        del self.free[p]
+        col = self.p[:, j].copy()
+        pivot = float(col[j])
+        self.free[j] = False
         self.updates += 1
-        if self.updates >= _REFRESH_EVERY:
-            self.inverse = self._fresh()
-            self.updates = 0
+        if not pivot > 0.0 or self.updates >= _REFRESH_EVERY:
+            self.refresh()
             return
-        keep = np.r_[0:p, p + 1:self.inverse.shape[0]]
-        m = self.inverse
-        self.inverse = m[np.ix_(keep, keep)] - np.outer(m[keep, p], m[p, keep]) / m[p, p]
+        _ger(-1.0 / pivot, col, col, a=self.p, overwrite_a=1)
+        # Row and column j are zero in exact arithmetic; make them so.
+        self.p[j, :] = 0.0
+        self.p[:, j] = 0.0
 
 
-def _critical_line(inputs: MixInputs) -> Frontier:
+def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Frontier:
+    """``start`` is the minimum-variance solution when the caller already has it."""
     s, mu, lo, hi = inputs.covariance, inputs.expected_returns, inputs.lower, inputs.upper
     n = inputs.n
-    start = solve_box_problem(BoxProblem(s, lo, hi, None), min_variance_start(inputs))
+    if start is None:
+        start = solve_box_problem(BoxProblem(s, lo, hi, None), min_variance_start(inputs))
     state = start.state.copy()
     lo0 = np.where(np.isfinite(lo), lo, 0.0)
     hi0 = np.where(np.isfinite(hi), hi, 0.0)
+    finite_lo, finite_hi = np.isfinite(lo), np.isfinite(hi)
     c = np.where(state == UPPER, hi0, np.where((state == LOWER) | (state == FIXED), lo0, 0.0))
+    # Sign that makes a bound multiplier non-negative (+1 at a lower bound, -1 at an upper
+    # one, 0 for free and fixed assets: a fixed asset never leaves its bound).
+    side = np.where(state == LOWER, 1.0, np.where(state == UPPER, -1.0, 0.0))
+    # Columns (1, mu, S c): P times them gives (v, u, r) in one product.
+    rhs = np.empty((n, 3))
+    rhs[:, 0] = 1.0
+    rhs[:, 1] = mu
     held = np.flatnonzero(c)
-    s_c = c[held] @ s[held] if held.size else np.zeros(n)
-    inv = _FreeInverse(s, [int(i) for i in np.flatnonzero(state == FREE)])
+    rhs[:, 2] = c[held] @ s[held] if held.size else 0.0
+    s_c = rhs[:, 2]
+    inv = _PaddedInverse(s, state == FREE)
+    f = int(np.count_nonzero(inv.free))
     mu_scale = float(np.max(np.abs(mu)))
+    tiny = float(np.finfo(float).tiny)
+    ab = np.empty((n, 2))
 
     lambdas: list[float] = [0.0]
     corners: list[FloatArray] = [start.weights.copy()]
     lam = 0.0
     last_moved = -1
     unbounded = False
-    for _ in range(10 * n + 100):
-        free = np.asarray(inv.free, dtype=np.intp)
-        f = free.size
-        budget = 1.0 - float(c.sum())
-        h = s_c[free]
-        m_inv = inv.inverse
-        v = m_inv.sum(axis=1)
-        u = m_inv @ mu[free]
-        r = m_inv @ h
-        one_v = float(v.sum())
-        gamma0 = (budget + float(r.sum())) / one_v
-        gamma1 = -float(u.sum()) / one_v
-        a_f = gamma0 * v - r
-        b_f = u + gamma1 * v if f > 1 else np.zeros(1)
-        b_tol = 1e-12 * max(float(np.max(np.abs(u))), float(np.max(np.abs(v))) * abs(gamma1), np.finfo(float).tiny)
-        b_f = np.where(np.abs(b_f) <= b_tol, 0.0, b_f)
-        rows = s[free]
-        sa = a_f @ rows + s_c
-        sb = b_f @ rows
-        g0 = sa - gamma0
-        g1 = sb - mu - gamma1
+    refreshed = True
+    for _ in range(12 * n + 100):
+        vur = inv.p @ rhs
+        one_v, u_sum, r_sum = vur.sum(axis=0).tolist()
+        v, u, r = vur[:, 0], vur[:, 1], vur[:, 2]
+        gamma0 = (1.0 - float(c.sum()) + r_sum) / one_v
+        gamma1 = -u_sum / one_v
+        # a (weights at lambda = 0 on this face) and b (their slope); both zero off F but
+        # a, which holds the bound values there.
+        a_f = ab[:, 0]
+        b_f = ab[:, 1]
+        np.subtract(gamma0 * v, r, out=a_f)
+        a_f += c
+        if f > 1:
+            np.add(u, gamma1 * v, out=b_f)
+            b_tol = 1e-12 * max(float(np.max(np.abs(u))), float(np.max(np.abs(v))) * abs(gamma1), tiny)
+            b_f[np.abs(b_f) <= b_tol] = 0.0
+        else:
+            b_f[:] = 0.0
+        sab = s @ ab
+        g0 = sab[:, 0] - gamma0
+        g1 = sab[:, 1] - mu - gamma1
+        g_scale = max(mu_scale + abs(gamma1), float(np.max(np.abs(sab[:, 1]))), tiny)
+        g_tol = 1e-13 * g_scale
+        # The free rows of g0, g1 vanish in exact arithmetic: their size is the drift of the
+        # updated inverse, so refactorise only when it shows.
+        if not refreshed:
+            drift0 = float(np.max(np.abs(g0[inv.free])))
+            drift1 = float(np.max(np.abs(g1[inv.free])))
+            scale0 = max(abs(gamma0), float(np.max(np.abs(sab[:, 0]))), tiny)
+            if drift0 > _DRIFT_RTOL * scale0 or drift1 > _DRIFT_RTOL * g_scale:
+                inv.refresh()
+                refreshed = True
+                continue
         lam_tol = 1e-12 * max(1.0, lam)
-        g_tol = 1e-13 * max(mu_scale + abs(gamma1), float(np.max(np.abs(sb))), np.finfo(float).tiny)
-
-        candidates = np.full(n, math.inf)
-        kinds = np.zeros(n, dtype=np.int8)  # new state for the asset if its event fires
         with np.errstate(divide="ignore", invalid="ignore"):
-            up = b_f > 0.0
-            down = b_f < 0.0
-            hit_hi = np.where(up & np.isfinite(hi[free]), (hi0[free] - a_f) / b_f, math.inf)
-            hit_lo = np.where(down & np.isfinite(lo[free]), (lo0[free] - a_f) / b_f, math.inf)
-            free_event = np.minimum(hit_hi, hit_lo)
-            candidates[free] = free_event
-            kinds[free] = np.where(hit_hi <= hit_lo, UPPER, LOWER)
-            at_lower = state == LOWER
-            at_upper = state == UPPER
-            release = (at_lower & (g1 < -g_tol)) | (at_upper & (g1 > g_tol))
-            cross = np.where(release, -g0 / g1, math.inf)
-        candidates = np.where(release, cross, candidates)
-        kinds = np.where(release, FREE, kinds)
+            # b is exactly zero off the free set, so these masks see free assets only.
+            hit_hi = np.where((b_f > 0.0) & finite_hi, (hi0 - a_f) / b_f, math.inf)
+            hit_lo = np.where((b_f < 0.0) & finite_lo, (lo0 - a_f) / b_f, math.inf)
+            release = side * g1 < -g_tol
+            candidates = np.where(release, -g0 / g1, np.minimum(hit_hi, hit_lo))
         if last_moved >= 0 and candidates[last_moved] <= lam + lam_tol:
             candidates[last_moved] = math.inf
-        candidates = np.where(candidates < lam - lam_tol, math.inf, candidates)
+        candidates[candidates < lam - lam_tol] = math.inf
         j = int(np.argmin(candidates))
         lam_next = float(candidates[j])
         if not math.isfinite(lam_next):
-            if np.any(b_f != 0.0):
+            if f > 1 and np.any(b_f != 0.0):
                 # No bound ever stops the last segment: the frontier has no top.
                 lam_far = lam + max(1.0, lam)
-                w = np.where(state == FREE, 0.0, c)
-                w[free] = a_f + lam_far * b_f
                 lambdas.append(lam_far)
-                corners.append(w)
+                corners.append(a_f + lam_far * b_f)
                 unbounded = True
             break
         lam_next = max(lam_next, lam)
-        w = c.copy()
-        w[free] = a_f + lam_next * b_f
-        if state[j] == FREE:
-            bound = hi[j] if kinds[j] == UPPER else lo[j]
+        w = a_f + lam_next * b_f
+        if inv.free[j]:
+            if hit_hi[j] <= hit_lo[j]:
+                bound, state[j], side[j] = hi[j], UPPER, -1.0
+            else:
+                bound, state[j], side[j] = lo[j], LOWER, 1.0
             w[j] = bound
-            state[j] = kinds[j]
             c[j] = bound
             if bound != 0.0:
                 s_c += bound * s[j]
             inv.remove(j)
+            f -= 1
         else:
             if c[j] != 0.0:
                 s_c -= c[j] * s[j]
             c[j] = 0.0
             state[j] = FREE
+            side[j] = 0.0
             inv.add(j)
+            f += 1
+        refreshed = inv.updates == 0
         lambdas.append(lam_next)
         corners.append(w)
         lam = lam_next
         last_moved = j
     else:
-        raise RuntimeError(f"critical line did not finish in {10 * n + 100} corners")
+        raise RuntimeError(f"critical line did not finish in {12 * n + 100} steps")
 
     weights = np.vstack(corners)
     # Clip rounding spill over a bound; anything larger is a bug, not rounding.
