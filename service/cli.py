@@ -18,11 +18,12 @@ def _serve(settings: Settings, host: str, port: int, migrate: bool) -> None:
 
 
 def _demo(settings: Settings, host: str, port: int) -> None:
-    from service.api.auth import new_secret
-    from service.api.schemas import MixIn
-    from service.api.state import PlanView
+    import json
+
     from service.allocation import build_policy
+    from service.api.auth import new_secret
     from service.api.metrics import Metrics
+    from service.api.schemas import MixIn
     from service.api.state import AppState
     from service.demo import DEMO_ALLOCATION, DEMO_MIX, DEMO_PLAN
     from service.store import Database, get_plan, insert_key, insert_plan, secret_hash, set_active_version
@@ -50,8 +51,6 @@ def _demo(settings: Settings, host: str, port: int) -> None:
             secrets_by_role[role] = secret
     db.close()
     t = doc["tangency"]
-    import json
-
     base = f"http://{host}:{port}"
     print(f"demo plan   {plan.plan_id} ({plan.name}), database {settings.database_url}")
     print(f"mix         {DEMO_MIX['version']} content_hash {doc['content_hash'][:16]}... "

@@ -11,14 +11,13 @@ import secrets
 from collections.abc import Callable
 from dataclasses import dataclass
 
-from service.store import KeyRecord, secret_hash, secret_matches
+from service.store import KeyRecord, secret_matches
 
 from .errors import Forbidden, NotFound, Unauthorized
 
 KeyLoader = Callable[[str], KeyRecord | None]
 
 BOOTSTRAP_KEY_ID = "operator-bootstrap"
-ROLES = ("operator", "committee", "portal")
 _PREFIX = "mxl_"
 _KEY_ID_LENGTH = 16
 
@@ -86,4 +85,4 @@ class KeyRing:
         return Caller(record.key_id, record.role, record.plan_id)
 
 
-__all__ = ["BOOTSTRAP_KEY_ID", "Caller", "KeyLoader", "KeyRing", "new_secret", "secret_hash"]
+__all__ = ["BOOTSTRAP_KEY_ID", "Caller", "KeyLoader", "KeyRing", "key_id_of", "new_secret"]

@@ -43,10 +43,12 @@ FloatArray = npt.NDArray[np.float64]
 #: max expected return) - m0).
 UNBOUNDED_TOP_FACTOR = 1.5
 
-# Refactorise the free block after this many rank-one updates at the latest, and
-# earlier when the free rows of the reduced gradient drift above _DRIFT_RTOL of its scale.
+# Refactorise the free block after this many rank-one updates at the latest, and earlier
+# when the free rows of the reduced gradient drift above _REFACTOR_RTOL of their scale;
+# above _REFINE_RTOL one refinement step cleans the corner instead.
 _REFRESH_EVERY = 256
-_DRIFT_RTOL = 1e-12
+_REFACTOR_RTOL = 1e-8
+_REFINE_RTOL = 1e-11
 _RETURN_RTOL = 1e-12
 
 
@@ -196,6 +198,22 @@ class _PaddedInverse:
         self.p[:, j] = 0.0
 
 
+def _slope(b_f: FloatArray, u: FloatArray | None, v: FloatArray, gamma1: float, f: int, tiny: float,
+           tol_from: FloatArray | None = None) -> None:
+    """b = u + gamma1 v in place (u None: b already holds it), zero when one asset is
+    free, with rounding-level entries set to zero so they make no spurious events."""
+    if f <= 1:
+        b_f[:] = 0.0
+        return
+    if u is not None:
+        np.multiply(v, gamma1, out=b_f)
+        b_f += u
+    ref = u if u is not None else tol_from
+    assert ref is not None
+    b_tol = 1e-12 * max(float(np.abs(ref).max()), float(np.abs(v).max()) * abs(gamma1), tiny)
+    b_f[np.abs(b_f) <= b_tol] = 0.0
+
+
 def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Frontier:
     """``start`` is the minimum-variance solution when the caller already has it."""
     s, mu, lo, hi = inputs.covariance, inputs.expected_returns, inputs.lower, inputs.upper
@@ -205,7 +223,6 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
     state = start.state.copy()
     lo0 = np.where(np.isfinite(lo), lo, 0.0)
     hi0 = np.where(np.isfinite(hi), hi, 0.0)
-    finite_lo, finite_hi = np.isfinite(lo), np.isfinite(hi)
     c = np.where(state == UPPER, hi0, np.where((state == LOWER) | (state == FIXED), lo0, 0.0))
     # Sign that makes a bound multiplier non-negative (+1 at a lower bound, -1 at an upper
     # one, 0 for free and fixed assets: a fixed asset never leaves its bound).
@@ -239,36 +256,53 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
         # a, which holds the bound values there.
         a_f = ab[:, 0]
         b_f = ab[:, 1]
-        np.subtract(gamma0 * v, r, out=a_f)
+        np.multiply(v, gamma0, out=a_f)
+        a_f -= r
         a_f += c
-        if f > 1:
-            np.add(u, gamma1 * v, out=b_f)
-            b_tol = 1e-12 * max(float(np.max(np.abs(u))), float(np.max(np.abs(v))) * abs(gamma1), tiny)
-            b_f[np.abs(b_f) <= b_tol] = 0.0
-        else:
-            b_f[:] = 0.0
+        _slope(b_f, u, v, gamma1, f, tiny)
         sab = s @ ab
-        g0 = sab[:, 0] - gamma0
-        g1 = sab[:, 1] - mu - gamma1
-        g_scale = max(mu_scale + abs(gamma1), float(np.max(np.abs(sab[:, 1]))), tiny)
-        g_tol = 1e-13 * g_scale
-        # The free rows of g0, g1 vanish in exact arithmetic: their size is the drift of the
-        # updated inverse, so refactorise only when it shows.
+        # Reduced gradients (S a - gamma0, S b - mu - gamma1): at lambda they combine to the
+        # bound multipliers g0 + lambda g1.
+        grads = sab - (gamma0, gamma1)
+        grads[:, 1] -= mu
+        scales = np.abs(sab).max(axis=0)
         if not refreshed:
-            drift0 = float(np.max(np.abs(g0[inv.free])))
-            drift1 = float(np.max(np.abs(g1[inv.free])))
-            scale0 = max(abs(gamma0), float(np.max(np.abs(sab[:, 0]))), tiny)
-            if drift0 > _DRIFT_RTOL * scale0 or drift1 > _DRIFT_RTOL * g_scale:
+            # The free rows of the gradients vanish in exact arithmetic; after rank-one
+            # updates they show the drift of the inverse. Small drift is removed by one step
+            # of iterative refinement (P applied to the gradients, which it reads on F only),
+            # large drift by refactorising.
+            drift = np.abs(grads[inv.free]).max(axis=0)
+            drift0 = float(drift[0]) / max(abs(gamma0), float(scales[0]), tiny)
+            drift1 = float(drift[1]) / max(mu_scale + abs(gamma1), float(scales[1]), tiny)
+            if drift0 > _REFACTOR_RTOL or drift1 > _REFACTOR_RTOL:
                 inv.refresh()
                 refreshed = True
                 continue
+            if drift0 > _REFINE_RTOL or drift1 > _REFINE_RTOL:
+                corr = inv.p @ grads
+                shift = corr.sum(axis=0) / one_v
+                # Keeps 1'a = budget and 1'b = 0: the correction is shift * v - P grads.
+                a_f -= corr[:, 0]
+                a_f += float(shift[0]) * v
+                gamma0 += float(shift[0])
+                if f > 1:
+                    np.subtract(b_f, corr[:, 1], out=b_f)
+                    b_f += float(shift[1]) * v
+                    gamma1 += float(shift[1])
+                    _slope(b_f, None, v, gamma1, f, tiny, tol_from=u)
+                sab = s @ ab
+                grads = sab - (gamma0, gamma1)
+                grads[:, 1] -= mu
+                scales = np.abs(sab).max(axis=0)
+        g0, g1 = grads[:, 0], grads[:, 1]
+        g_tol = 1e-13 * max(mu_scale + abs(gamma1), float(scales[1]), tiny)
         lam_tol = 1e-12 * max(1.0, lam)
         with np.errstate(divide="ignore", invalid="ignore"):
-            # b is exactly zero off the free set, so these masks see free assets only.
-            hit_hi = np.where((b_f > 0.0) & finite_hi, (hi0 - a_f) / b_f, math.inf)
-            hit_lo = np.where((b_f < 0.0) & finite_lo, (lo0 - a_f) / b_f, math.inf)
+            # b is exactly zero off the free set, so only free assets get a bound event;
+            # an infinite bound gives +inf, never a finite event.
+            hit = (np.where(b_f > 0.0, hi, lo) - a_f) / b_f
             release = side * g1 < -g_tol
-            candidates = np.where(release, -g0 / g1, np.minimum(hit_hi, hit_lo))
+            candidates = np.where(release, -g0 / g1, np.where(b_f != 0.0, hit, math.inf))
         if last_moved >= 0 and candidates[last_moved] <= lam + lam_tol:
             candidates[last_moved] = math.inf
         candidates[candidates < lam - lam_tol] = math.inf
@@ -285,7 +319,7 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
         lam_next = max(lam_next, lam)
         w = a_f + lam_next * b_f
         if inv.free[j]:
-            if hit_hi[j] <= hit_lo[j]:
+            if b_f[j] > 0.0:
                 bound, state[j], side[j] = hi[j], UPPER, -1.0
             else:
                 bound, state[j], side[j] = lo[j], LOWER, 1.0
