@@ -11,9 +11,10 @@ Each face (a partition of the assets into free / at lower / at upper / fixed) is
 equality-constrained KKT solve: a Cholesky factor of the free block and a 3x3 (or
 scalar) system for the multipliers. A primal-dual active-set iteration moves every
 primal violator to its bound and releases the most wrong-signed bound multipliers (at
-most max(6, free count) per step), restarted once from the all-free face; if it still
-cycles or meets a singular face, a primal active-set method (one change per step, Bland's rule after a degenerate step) finishes
-from a feasible vertex. The answer is accepted only after a scale-free KKT check
+most max(6, free count) per step), restarted releasing them all and then from the
+all-free face; if it still cycles or meets a singular face, a primal active-set method
+(one change per step, Bland's rule after a degenerate step) finishes from a feasible
+vertex. The answer is accepted only after a scale-free KKT check
 (stationarity, primal feasibility, dual signs, complementarity) to 1e-10.
 """
 
@@ -234,9 +235,10 @@ def _solve3(m00: float, m01: float, m02: float, m10: float, m11: float, m12: flo
     return c00 / det, c10 / det, c20 / det
 
 
-def _pdas(problem: BoxProblem, state: StateArray, max_iter: int) -> tuple[Face, StateArray, int] | None:
+def _pdas(problem: BoxProblem, state: StateArray, max_iter: int,
+          release_floor: int = _RELEASE_FLOOR) -> tuple[Face, StateArray, int] | None:
     """Primal-dual active set: move primal violators to their bound and release bounded
-    assets whose multiplier has the wrong sign (at most max(_RELEASE_FLOOR, free count)).
+    assets whose multiplier has the wrong sign (at most max(release_floor, free count)).
 
     Works on index sets. ``base`` holds the columns (e, 1, S c) with c the held bound
     values, so one row gather gives the right-hand sides and one product all the bounded
@@ -318,7 +320,7 @@ def _pdas(problem: BoxProblem, state: StateArray, max_iter: int) -> tuple[Face, 
             w = c.copy()
             w[free] = w_f
             return Face(y=w, t=1.0, alpha=a, beta=b, grad=grad), state, iteration
-        limit = max(_RELEASE_FLOOR, f)
+        limit = max(release_floor, f)
         if release.size > limit:
             release = release[np.argpartition(signed[release], limit - 1)[:limit]]
         state = state.copy()
@@ -504,12 +506,14 @@ def solve_box_problem(problem: BoxProblem, start: StateArray,
     """Solve from a warm-start active set; primal active set if the fast iteration fails
     (``before_fallback`` runs first: the place for input checks only failures need).
 
-    The primal-dual iteration is tried twice: from ``start``, then restarted from the face
-    with every asset free. A greedy start with few free assets and many binding caps can
-    make the iteration swap a handful of assets back and forth (it releases at most
-    max(6, f) per step) or reach a homogenised face with t <= 0; from the all-free face it
-    only has to move assets onto bounds, and one Cholesky of the full matrix is still far
-    cheaper than the primal search's one refactorisation per working-set change.
+    The primal-dual iteration is tried up to three times. A greedy start with few free
+    assets and many binding caps can make it swap a handful of assets back and forth (it
+    releases at most max(6, f) per step) and end on a homogenised face with t <= 0; it is
+    then restarted from ``start`` releasing every wrong-signed bound at once, and then from
+    the face with every asset free (where it only moves assets onto bounds, but whose
+    tangency face has t <= 0 when the risk-free rate is high). Each failed attempt costs a
+    few Cholesky factorisations, far less than the primal search's one refactorisation per
+    working-set change.
     """
     if problem.any_fixed:
         start = start.copy()
@@ -519,8 +523,8 @@ def solve_box_problem(problem: BoxProblem, start: StateArray,
         start[int(np.flatnonzero(~problem.fixed)[0])] = FREE
     max_iter = min(4 * problem.n + 10, 200)
     all_free = np.where(problem.fixed, FIXED, FREE).astype(np.int8)
-    for first in (start, all_free):
-        quick = _pdas(problem, first, max_iter=max_iter)
+    for first, floor in ((start, _RELEASE_FLOOR), (start, problem.n), (all_free, _RELEASE_FLOOR)):
+        quick = _pdas(problem, first, max_iter=max_iter, release_floor=floor)
         if quick is None:
             continue
         face, state, iterations = quick

@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import numpy.typing as npt
 
-from service.numerics.active_set import (KKT_TOLERANCE, BoxProblem, min_variance_kkt_residual,
+from service.numerics.active_set import (KKT_TOLERANCE, BoxProblem, BoxSolution, min_variance_kkt_residual,
                                          solve_box_problem, tangency_kkt_residual)
 from service.numerics.closed_form import ClosedForm
 from service.numerics.errors import InputError
@@ -18,7 +18,7 @@ from service.numerics.max_return import FREE, max_return_vertex
 from service.numerics.portfolio import Portfolio, portfolio_from_weights
 from service.numerics.warm_start import min_variance_start, tangency_start
 
-__all__ = ["tangency", "min_variance", "only_feasible_weights"]
+__all__ = ["tangency", "min_variance", "min_variance_with_solution", "only_feasible_weights"]
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -80,18 +80,24 @@ def tangency(inputs: MixInputs) -> tuple[Portfolio, float]:
 
 def min_variance(inputs: MixInputs) -> Portfolio:
     """The exact fully invested minimum-variance portfolio within the bounds."""
+    return min_variance_with_solution(inputs)[0]
+
+
+def min_variance_with_solution(inputs: MixInputs) -> tuple[Portfolio, BoxSolution | None]:
+    """``min_variance`` and, when the active-set solver ran, its solution (final active
+    set included), from which the critical line starts without solving it again."""
     only = only_feasible_weights(inputs)
     if only is not None:
-        return portfolio_from_weights(inputs, only, "only_feasible")
+        return portfolio_from_weights(inputs, only, "only_feasible"), None
     if inputs.unconstrained:
         w = ClosedForm(inputs).min_variance_weights()
         state = np.full(inputs.n, FREE, dtype=np.int8)
         residual = min_variance_kkt_residual(inputs.covariance, inputs.lower, inputs.upper, w, state, 0.0)
         _check_residual(residual, "closed-form minimum variance")
-        return portfolio_from_weights(inputs, w, "closed_form")
+        return portfolio_from_weights(inputs, w, "closed_form"), None
     problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, None)
     solution = solve_box_problem(problem, min_variance_start(inputs))
-    return portfolio_from_weights(inputs, solution.weights, "active_set", solution.variance)
+    return portfolio_from_weights(inputs, solution.weights, "active_set", solution.variance), solution
 
 
 def _check_residual(residual: float, what: str) -> None:

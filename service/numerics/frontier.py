@@ -6,8 +6,12 @@ algorithm (Markowitz): minimise w'Sw/2 - lambda mu'w on {1'w = 1, lo <= w <= hi}
 lambda rising from 0 (minimum variance). On a fixed active set the weights are affine in
 lambda; a corner is where a free weight reaches a bound or a bounded weight's multiplier
 reaches zero. The inverse of the free block of S is carried from corner to corner by
-bordering (add an asset) and Schur downdates (drop one), O(f^2) each, refreshed from a
-fresh factorisation every few dozen updates.
+bordering (add an asset) and Schur downdates (drop one), each one in-place rank-one BLAS
+update of an n x n matrix that is zero outside the free set (no gathers, no repacking).
+Each corner costs three BLAS products and a few dozen vector operations over all assets,
+with the event search vectorised. Rounding drift of the updated inverse is measured at
+every corner (the free entries of the reduced gradients must vanish); one step of
+iterative refinement removes small drift, a fresh Cholesky factorisation large drift.
 
 Between consecutive corners the weights are affine in the target return, so
 ``Frontier.weights_at`` interpolates exactly, and the Sharpe ratio on each segment has a
@@ -34,7 +38,8 @@ from service.numerics.portfolio import Portfolio, portfolio_from_weights
 from service.numerics.exact import only_feasible_weights
 from service.numerics.warm_start import min_variance_start
 
-__all__ = ["Frontier", "efficient_frontier", "best_sharpe_on_frontier", "UNBOUNDED_TOP_FACTOR"]
+__all__ = ["Frontier", "efficient_frontier", "frontier_from_min_variance", "best_sharpe_on_frontier",
+           "UNBOUNDED_TOP_FACTOR"]
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -48,7 +53,7 @@ UNBOUNDED_TOP_FACTOR = 1.5
 # above _REFINE_RTOL one refinement step cleans the corner instead.
 _REFRESH_EVERY = 256
 _REFACTOR_RTOL = 1e-8
-_REFINE_RTOL = 1e-11
+_REFINE_RTOL = 3e-11
 _RETURN_RTOL = 1e-12
 
 
@@ -182,7 +187,8 @@ class _PaddedInverse:
             return
         # Bordering: with z_j = -1 (z_j is 0, j not yet free) the new inverse is P + z z'/d.
         z[j] = -1.0
-        _ger(1.0 / d, z, z, a=self.p, overwrite_a=1)
+        # In place for a Fortran-ordered float64 matrix; the assignment keeps it right if not.
+        self.p = _ger(1.0 / d, z, z, a=self.p, overwrite_a=1)
 
     def remove(self, j: int) -> None:
         col = self.p[:, j].copy()
@@ -192,26 +198,22 @@ class _PaddedInverse:
         if not pivot > 0.0 or self.updates >= _REFRESH_EVERY:
             self.refresh()
             return
-        _ger(-1.0 / pivot, col, col, a=self.p, overwrite_a=1)
+        self.p = _ger(-1.0 / pivot, col, col, a=self.p, overwrite_a=1)
         # Row and column j are zero in exact arithmetic; make them so.
         self.p[j, :] = 0.0
         self.p[:, j] = 0.0
 
 
-def _slope(b_f: FloatArray, u: FloatArray | None, v: FloatArray, gamma1: float, f: int, tiny: float,
-           tol_from: FloatArray | None = None) -> None:
-    """b = u + gamma1 v in place (u None: b already holds it), zero when one asset is
-    free, with rounding-level entries set to zero so they make no spurious events."""
-    if f <= 1:
-        b_f[:] = 0.0
-        return
-    if u is not None:
-        np.multiply(v, gamma1, out=b_f)
-        b_f += u
-    ref = u if u is not None else tol_from
-    assert ref is not None
-    b_tol = 1e-12 * max(float(np.abs(ref).max()), float(np.abs(v).max()) * abs(gamma1), tiny)
-    b_f[np.abs(b_f) <= b_tol] = 0.0
+def _gradients(ab: FloatArray, s: FloatArray, mu: FloatArray, gamma0: float,
+               gamma1: float) -> tuple[FloatArray, float, float]:
+    """Reduced gradients (S a - gamma0, S b - mu - gamma1), whose combination g0 + lambda g1
+    is the bound multipliers at lambda, and the largest |S a|, |S b| (their scale)."""
+    grads: FloatArray = ab @ s
+    big0, big1 = np.abs(grads).max(axis=1).tolist()
+    grads[0] -= gamma0
+    grads[1] -= mu
+    grads[1] -= gamma1
+    return grads, big0, big1
 
 
 def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Frontier:
@@ -227,18 +229,23 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
     # Sign that makes a bound multiplier non-negative (+1 at a lower bound, -1 at an upper
     # one, 0 for free and fixed assets: a fixed asset never leaves its bound).
     side = np.where(state == LOWER, 1.0, np.where(state == UPPER, -1.0, 0.0))
-    # Columns (1, mu, S c): P times them gives (v, u, r) in one product.
-    rhs = np.empty((n, 3))
-    rhs[:, 0] = 1.0
-    rhs[:, 1] = mu
+    # Rows (1, mu, S c): times P (symmetric) they give (v, u, r) in one product. Vectors
+    # are kept as rows of C-ordered arrays: reductions and slices along rows are cheap.
+    rhs = np.empty((3, n))
+    rhs[0] = 1.0
+    rhs[1] = mu
     held = np.flatnonzero(c)
-    rhs[:, 2] = c[held] @ s[held] if held.size else 0.0
-    s_c = rhs[:, 2]
+    rhs[2] = c[held] @ s[held] if held.size else 0.0
+    s_c = rhs[2]
     inv = _PaddedInverse(s, state == FREE)
     f = int(np.count_nonzero(inv.free))
     mu_scale = float(np.max(np.abs(mu)))
     tiny = float(np.finfo(float).tiny)
-    ab = np.empty((n, 2))
+    ab = np.empty((2, n))
+    a_f, b_f = ab[0], ab[1]
+    # (a, b) = coef @ (v, u, r) (+ c for a): a = gamma0 v - r, b = gamma1 v + u.
+    coef = np.array([[0.0, 0.0, -1.0], [0.0, 1.0, 0.0]])
+    c_sum = float(c.sum())
 
     lambdas: list[float] = [0.0]
     corners: list[FloatArray] = [start.weights.copy()]
@@ -246,104 +253,101 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
     last_moved = -1
     unbounded = False
     refreshed = True
-    for _ in range(12 * n + 100):
-        vur = inv.p @ rhs
-        one_v, u_sum, r_sum = vur.sum(axis=0).tolist()
-        v, u, r = vur[:, 0], vur[:, 1], vur[:, 2]
-        gamma0 = (1.0 - float(c.sum()) + r_sum) / one_v
-        gamma1 = -u_sum / one_v
-        # a (weights at lambda = 0 on this face) and b (their slope); both zero off F but
-        # a, which holds the bound values there.
-        a_f = ab[:, 0]
-        b_f = ab[:, 1]
-        np.multiply(v, gamma0, out=a_f)
-        a_f -= r
-        a_f += c
-        _slope(b_f, u, v, gamma1, f, tiny)
-        sab = s @ ab
-        # Reduced gradients (S a - gamma0, S b - mu - gamma1): at lambda they combine to the
-        # bound multipliers g0 + lambda g1.
-        grads = sab - (gamma0, gamma1)
-        grads[:, 1] -= mu
-        scales = np.abs(sab).max(axis=0)
-        if not refreshed:
-            # The free rows of the gradients vanish in exact arithmetic; after rank-one
-            # updates they show the drift of the inverse. Small drift is removed by one step
-            # of iterative refinement (P applied to the gradients, which it reads on F only),
-            # large drift by refactorising.
-            drift = np.abs(grads[inv.free]).max(axis=0)
-            drift0 = float(drift[0]) / max(abs(gamma0), float(scales[0]), tiny)
-            drift1 = float(drift[1]) / max(mu_scale + abs(gamma1), float(scales[1]), tiny)
-            if drift0 > _REFACTOR_RTOL or drift1 > _REFACTOR_RTOL:
-                inv.refresh()
-                refreshed = True
-                continue
-            if drift0 > _REFINE_RTOL or drift1 > _REFINE_RTOL:
-                corr = inv.p @ grads
-                shift = corr.sum(axis=0) / one_v
-                # Keeps 1'a = budget and 1'b = 0: the correction is shift * v - P grads.
-                a_f -= corr[:, 0]
-                a_f += float(shift[0]) * v
-                gamma0 += float(shift[0])
-                if f > 1:
-                    np.subtract(b_f, corr[:, 1], out=b_f)
-                    b_f += float(shift[1]) * v
-                    gamma1 += float(shift[1])
-                    _slope(b_f, None, v, gamma1, f, tiny, tol_from=u)
-                sab = s @ ab
-                grads = sab - (gamma0, gamma1)
-                grads[:, 1] -= mu
-                scales = np.abs(sab).max(axis=0)
-        g0, g1 = grads[:, 0], grads[:, 1]
-        g_tol = 1e-13 * max(mu_scale + abs(gamma1), float(scales[1]), tiny)
-        lam_tol = 1e-12 * max(1.0, lam)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            # b is exactly zero off the free set, so only free assets get a bound event;
-            # an infinite bound gives +inf, never a finite event.
+    # The event search divides by slopes and gradients that may be zero (masked after).
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for _ in range(12 * n + 100):
+            vur = rhs @ inv.p
+            one_v, u_sum, r_sum = vur.sum(axis=1).tolist()
+            v, u, r = vur
+            gamma0 = (1.0 - c_sum + r_sum) / one_v
+            gamma1 = -u_sum / one_v
+            # a (the weights at lambda = 0 on this face) and b (their slope in lambda): b is
+            # zero off F, a holds the bound values there. One free asset cannot move.
+            coef[0, 0] = gamma0
+            coef[1, 0] = gamma1 if f > 1 else 0.0
+            coef[1, 1] = 1.0 if f > 1 else 0.0
+            np.dot(coef, vur, out=ab)
+            a_f += c
+            grads, big0, big1 = _gradients(ab, s, mu, gamma0, gamma1)
+            if not refreshed:
+                # The free entries of the gradients vanish in exact arithmetic; after rank-one
+                # updates they show the drift of the inverse. Small drift is removed by one step
+                # of iterative refinement, large drift by refactorising.
+                drift0, drift1 = np.abs(grads[:, inv.free]).max(axis=1).tolist()
+                drift0 /= max(abs(gamma0), big0, tiny)
+                drift1 /= max(mu_scale + abs(gamma1), big1, tiny)
+                if drift0 > _REFACTOR_RTOL or drift1 > _REFACTOR_RTOL:
+                    inv.refresh()
+                    refreshed = True
+                    continue
+                if drift0 > _REFINE_RTOL or drift1 > _REFINE_RTOL:
+                    # P reads the gradients on F only. The correction shift * v - P grads keeps
+                    # 1'a = budget and 1'b = 0.
+                    corr = grads @ inv.p
+                    shift0, shift1 = (corr.sum(axis=1) / one_v).tolist()
+                    a_f -= corr[0]
+                    a_f += shift0 * v
+                    gamma0 += shift0
+                    if f > 1:
+                        b_f -= corr[1]
+                        b_f += shift1 * v
+                        gamma1 += shift1
+                    grads, big0, big1 = _gradients(ab, s, mu, gamma0, gamma1)
+            big_u, big_v = np.abs(vur[:2]).max(axis=1).tolist()
+            # Rounding-level slopes are no motion: they must not make bound events.
+            b_tol = 1e-12 * max(big_u, big_v * abs(gamma1), tiny)
+            g0, g1 = grads
+            g_tol = 1e-13 * max(mu_scale + abs(gamma1), big1, tiny)
+            lam_tol = 1e-12 * max(1.0, lam)
+            # b is exactly zero off the free set, so only free assets get a bound event; an
+            # infinite bound gives +inf, never a finite event. Divisions by zero are masked.
             hit = (np.where(b_f > 0.0, hi, lo) - a_f) / b_f
+            hit[np.abs(b_f) <= b_tol] = math.inf
             release = side * g1 < -g_tol
-            candidates = np.where(release, -g0 / g1, np.where(b_f != 0.0, hit, math.inf))
-        if last_moved >= 0 and candidates[last_moved] <= lam + lam_tol:
-            candidates[last_moved] = math.inf
-        candidates[candidates < lam - lam_tol] = math.inf
-        j = int(np.argmin(candidates))
-        lam_next = float(candidates[j])
-        if not math.isfinite(lam_next):
-            if f > 1 and np.any(b_f != 0.0):
-                # No bound ever stops the last segment: the frontier has no top.
-                lam_far = lam + max(1.0, lam)
-                lambdas.append(lam_far)
-                corners.append(a_f + lam_far * b_f)
-                unbounded = True
-            break
-        lam_next = max(lam_next, lam)
-        w = a_f + lam_next * b_f
-        if inv.free[j]:
-            if b_f[j] > 0.0:
-                bound, state[j], side[j] = hi[j], UPPER, -1.0
+            candidates = np.where(release, -g0 / g1, hit)
+            if last_moved >= 0 and candidates[last_moved] <= lam + lam_tol:
+                candidates[last_moved] = math.inf
+            candidates[candidates < lam - lam_tol] = math.inf
+            j = int(np.argmin(candidates))
+            lam_next = float(candidates[j])
+            if not math.isfinite(lam_next):
+                if f > 1 and bool((np.abs(b_f) > b_tol).any()):
+                    # No bound ever stops the last segment: the frontier has no top.
+                    lam_far = lam + max(1.0, lam)
+                    lambdas.append(lam_far)
+                    corners.append(a_f + lam_far * b_f)
+                    unbounded = True
+                break
+            lam_next = max(lam_next, lam)
+            w = a_f + lam_next * b_f
+            if inv.free[j]:
+                if b_f[j] > 0.0:
+                    bound, state[j], side[j] = hi[j], UPPER, -1.0
+                else:
+                    bound, state[j], side[j] = lo[j], LOWER, 1.0
+                w[j] = bound
+                c[j] = bound
+                c_sum += bound
+                if bound != 0.0:
+                    s_c += bound * s[j]
+                inv.remove(j)
+                f -= 1
             else:
-                bound, state[j], side[j] = lo[j], LOWER, 1.0
-            w[j] = bound
-            c[j] = bound
-            if bound != 0.0:
-                s_c += bound * s[j]
-            inv.remove(j)
-            f -= 1
+                if c[j] != 0.0:
+                    s_c -= c[j] * s[j]
+                    c_sum -= c[j]
+                c[j] = 0.0
+                state[j] = FREE
+                side[j] = 0.0
+                inv.add(j)
+                f += 1
+            refreshed = inv.updates == 0
+            lambdas.append(lam_next)
+            corners.append(w)
+            lam = lam_next
+            last_moved = j
         else:
-            if c[j] != 0.0:
-                s_c -= c[j] * s[j]
-            c[j] = 0.0
-            state[j] = FREE
-            side[j] = 0.0
-            inv.add(j)
-            f += 1
-        refreshed = inv.updates == 0
-        lambdas.append(lam_next)
-        corners.append(w)
-        lam = lam_next
-        last_moved = j
-    else:
-        raise RuntimeError(f"critical line did not finish in {12 * n + 100} steps")
+            raise RuntimeError(f"critical line did not finish in {12 * n + 100} steps")
 
     weights = np.vstack(corners)
     # Clip rounding spill over a bound; anything larger is a bug, not rounding.
@@ -366,12 +370,18 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
 
 def efficient_frontier(inputs: MixInputs) -> Frontier:
     """The exact efficient frontier from minimum variance to its top."""
+    return frontier_from_min_variance(inputs, None)
+
+
+def frontier_from_min_variance(inputs: MixInputs, start: BoxSolution | None) -> Frontier:
+    """``efficient_frontier``, with the critical line started from ``start`` (the
+    active-set minimum-variance solution) when it is given."""
     only = only_feasible_weights(inputs)
     if only is not None:
         return _single(only, inputs.expected_returns)
     if inputs.unconstrained:
         return _two_fund(inputs)
-    return _critical_line(inputs)
+    return _critical_line(inputs, start)
 
 
 def best_sharpe_on_frontier(frontier: Frontier, inputs: MixInputs) -> FloatArray:

@@ -16,8 +16,8 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from service.numerics.exact import min_variance, tangency
-from service.numerics.frontier import Frontier, efficient_frontier
+from service.numerics.exact import min_variance_with_solution, tangency
+from service.numerics.frontier import Frontier, frontier_from_min_variance
 from service.numerics.inputs import MixInputs
 from service.numerics.numerical_routes import CrossCheck, cross_checks
 from service.numerics.portfolio import Portfolio
@@ -147,8 +147,9 @@ def solve_mix(inputs: MixInputs, *, cross_check: bool = True) -> SolvedMix:
     """Solve one validated mix exactly (tangency, minimum variance, frontier) and, unless
     ``cross_check`` is false, run the three numerical routes against the tangency."""
     best, residual = tangency(inputs)
-    lowest = min_variance(inputs)
-    frontier = efficient_frontier(inputs)
+    lowest, low_solution = min_variance_with_solution(inputs)
+    # The critical line starts at the minimum-variance active set: solved once, used twice.
+    frontier = frontier_from_min_variance(inputs, low_solution)
     checks = cross_checks(inputs, best) if cross_check else ()
     return SolvedMix(inputs=inputs, tangency=best, min_variance=lowest, frontier=frontier,
                      cross_checks=checks, kkt_residual=residual)

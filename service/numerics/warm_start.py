@@ -9,8 +9,6 @@ there the primal-dual iteration typically needs a handful of steps.
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 import numpy.typing as npt
 
@@ -34,41 +32,32 @@ def tangency_start(inputs: MixInputs, excess: npt.NDArray[np.float64]) -> StateA
     the tangency conditions): where caps bind, the first guess often caps the wrong assets,
     and each re-rank costs one product over the held assets.
 
-    A re-filled guess is kept only if its Sharpe ratio beats the guess it came from. The
-    score rewards assets that hedge the current guess whatever their return, so with tight
-    caps it can fill the budget with hedges and land on a vertex with a negative excess
-    return; the homogenised face there has t < 0 and the primal-dual iteration cannot start.
+    A re-filled guess is kept only if its excess return stays positive. The score rewards
+    assets that hedge the current guess whatever their return, so with tight caps it can
+    fill the budget with hedges and land on a vertex with e'w < 0, where the homogenised
+    face has t < 0 and the primal-dual iteration cannot start. (Keeping it only when its
+    Sharpe ratio improves also avoids that, but costs a product per re-rank and rejects
+    re-fills whose active set is better even though their vertex is not.)
     """
     lo, hi, s = inputs.lower, inputs.upper, inputs.covariance
     vertex = max_return_vertex(excess / inputs.volatilities, lo, hi)
     state, w = vertex.state, vertex.weights
-    sw, ratio = _sharpe(s, excess, w)
     for _ in range(_RERANKS):
-        if np.count_nonzero(state == UPPER) < _RERANK_MIN_MOVES or not ratio > 0.0:
+        if np.count_nonzero(state == UPPER) < _RERANK_MIN_MOVES:
             break
+        held = np.flatnonzero(w)
+        sw = w[held] @ s.take(held, axis=0)
         gain = float(excess @ w)
-        again = max_return_vertex((float(w @ sw) / gain) * excess - sw, lo, hi)
-        again_sw, again_ratio = _sharpe(s, excess, again.weights)
-        if not again_ratio > ratio:
+        if not gain > 0.0:
+            break
+        again = max_return_vertex((float(w[held] @ sw[held]) / gain) * excess - sw, lo, hi)
+        if not float(excess @ again.weights) > 0.0:
             break
         moved = int(np.count_nonzero(again.state != state))
-        state, w, sw, ratio = again.state, again.weights, again_sw, again_ratio
+        state, w = again.state, again.weights
         if moved < _RERANK_MIN_MOVES:
             break
     return state
-
-
-def _sharpe(s: npt.NDArray[np.float64], excess: npt.NDArray[np.float64],
-            w: npt.NDArray[np.float64]) -> tuple[npt.NDArray[np.float64], float]:
-    """(S w, Sharpe ratio of w), S w over the held assets only; the ratio is -inf when
-    w has no risk or an infinite weight."""
-    held = np.flatnonzero(w)
-    sw: npt.NDArray[np.float64] = w[held] @ s.take(held, axis=0)
-    variance = float(w @ sw)
-    gain = float(excess @ w)
-    if not (variance > 0.0 and math.isfinite(variance) and math.isfinite(gain)):
-        return sw, -math.inf
-    return sw, gain / math.sqrt(variance)
 
 
 def min_variance_start(inputs: MixInputs) -> StateArray:

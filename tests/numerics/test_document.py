@@ -71,8 +71,8 @@ def test_from_document_solves_nothing(monkeypatch: pytest.MonkeyPatch) -> None:
     import service.numerics.frontier as frontier
     import service.numerics.solved_mix as solved_mix
 
-    for module, name in [(numerics, "solve_mix"), (solved_mix, "tangency"), (solved_mix, "min_variance"),
-                         (solved_mix, "efficient_frontier"), (solved_mix, "cross_checks"),
+    for module, name in [(numerics, "solve_mix"), (solved_mix, "tangency"), (solved_mix, "min_variance_with_solution"),
+                         (solved_mix, "frontier_from_min_variance"), (solved_mix, "cross_checks"),
                          (active_set, "solve_box_problem"), (closed_form, "ClosedForm"),
                          (frontier, "_critical_line"), (scipy.optimize, "minimize"),
                          (scipy.linalg, "cho_factor"), (np.linalg, "eigvalsh"), (np.linalg, "solve"),
