@@ -76,9 +76,11 @@ def inputs_from_canonical(canonical: Mapping[str, Any], *, max_condition_number:
 
 
 def solve(canonical: Mapping[str, Any], *, cross_check: bool, max_condition_number: float) -> SolvedMix:
+    """Tangency, minimum variance and (if asked) cross-checks; the frontier is solved apart."""
     return solve_mix(
         inputs_from_canonical(canonical, max_condition_number=max_condition_number),
         cross_check=cross_check,
+        frontier=False,
     )
 
 
@@ -148,10 +150,9 @@ class MixView:
         )
 
 
-def frontier_document(view: MixView, points: int) -> dict[str, Any]:
+def frontier_document(view: MixView, frontier: Frontier, points: int) -> dict[str, Any]:
     solved = view.solved
     codes = view.codes
-    frontier: Frontier = solved.frontier
     sharpe = view.solved.tangency.sharpe_ratio
     return {
         "version": view.version,

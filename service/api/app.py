@@ -74,6 +74,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
         try:
             yield
         finally:
+            state.mixes.close()
             if database is None:
                 db.close()
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Annotated
 
 from fastapi import APIRouter, Query, Request
+from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
@@ -35,7 +36,9 @@ async def publish_mix(plan_id: str, request: Request, caller: CallerDep, state: 
     body = parse_body(MixIn, await request.body())
     # Solving is CPU work: keep it off the event loop so other requests go on being answered.
     created, doc = await run_in_threadpool(state.mixes.publish, plan, body)
-    return json_response(doc, 201 if created else 200)
+    # The frontier is solved once the answer has gone out, so it never delays it.
+    later = BackgroundTask(state.mixes.solve_frontier_later, plan_id, body.version)
+    return json_response(doc, 201 if created else 200, background=later)
 
 
 @router.get("/current", response_model=MixOut, operation_id="get_current_mix", responses=problems(*AUTHED))
@@ -86,5 +89,5 @@ def read_frontier(
             f"points: at most {state.settings.max_frontier_points}",
             errors=[{"field": "points", "reason": f"at most {state.settings.max_frontier_points}"}],
         )
-    view = state.mixes.view(plan_id, version)
-    return json_response(frontier_document(view, points))
+    view, frontier = state.mixes.frontier(plan_id, version)
+    return json_response(frontier_document(view, frontier, points))

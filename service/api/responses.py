@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import orjson
+from starlette.background import BackgroundTask
 from starlette.responses import Response
 
 from .errors import PROBLEM_MEDIA_TYPE
@@ -21,8 +22,12 @@ _DESCRIPTIONS = {
 }
 
 
-def json_response(body: Any, status_code: int = 200, headers: dict[str, str] | None = None) -> Response:
-    return Response(orjson.dumps(body), status_code=status_code, media_type="application/json", headers=headers)
+def json_response(
+    body: Any, status_code: int = 200, headers: dict[str, str] | None = None, background: BackgroundTask | None = None
+) -> Response:
+    return Response(
+        orjson.dumps(body), status_code=status_code, media_type="application/json", headers=headers, background=background
+    )
 
 
 def raw_json_response(body: bytes, status_code: int = 200, headers: dict[str, str] | None = None) -> Response:

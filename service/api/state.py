@@ -6,9 +6,13 @@ replica may keep them for its lifetime; the active version can change, so it is 
 
 from __future__ import annotations
 
+import logging
 import threading
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
+
+from sqlalchemy.exc import SQLAlchemyError
 
 from service.allocation import (
     AllocationError,
@@ -21,16 +25,18 @@ from service.allocation import (
     published_document,
     solve,
 )
-from service.numerics import SolvedMix
+from service.numerics import Frontier, MixInputs, SolvedMix, efficient_frontier
 from service.settings import Settings
 from service.store import (
     Conflict,
     Database,
     KeyRecord,
     PlanRecord,
+    get_frontier,
     get_key,
     get_mix,
     get_plan,
+    insert_frontier,
     insert_mix,
 )
 
@@ -52,8 +58,18 @@ class PlanView:
         return cls(record.plan_id, record.name, record.currency, Policy.from_document(record.policy))
 
 
+log = logging.getLogger("mixline.mixes")
+
+
 class MixCatalog:
-    """Published mixes: solved once at publish, stored, and rebuilt from the stored document."""
+    """Published mixes: solved once at publish, stored, and rebuilt from the stored document.
+
+    Publishing answers once the tangency and the minimum-variance portfolio are solved and
+    stored; the exact frontier (the costliest part: hundreds of corner portfolios at 200 assets)
+    is solved right after, off the request, once per content hash, and stored beside the mix. A
+    frontier request that comes before it is ready waits for that one computation; a replica that
+    finds it stored by another never computes it.
+    """
 
     def __init__(self, database: Database, settings: Settings, metrics: Metrics) -> None:
         self._db = database
@@ -62,7 +78,48 @@ class MixCatalog:
         self._views: dict[tuple[str, str], MixView] = {}
         self._published: dict[tuple[str, str], dict[str, Any]] = {}
         self._solved_by_hash: dict[str, SolvedMix] = {}
+        self._frontiers: dict[str, Frontier] = {}
+        self._pending: dict[str, Future[Frontier]] = {}
+        self._solver = ThreadPoolExecutor(max_workers=1, thread_name_prefix="mixline-frontier")
         self._lock = threading.Lock()
+
+    def close(self) -> None:
+        self._solver.shutdown(wait=False, cancel_futures=False)
+
+    def frontier(self, plan_id: str, version: str) -> tuple[MixView, Frontier]:
+        view = self.view(plan_id, version)
+        known = self._frontiers.get(view.content_hash) or view.solved.frontier
+        if known is not None:
+            return view, known
+        return view, self._frontier_soon(view.content_hash, view.solved.inputs).result()
+
+    def _frontier_soon(self, digest: str, inputs: MixInputs) -> Future[Frontier]:
+        with self._lock:
+            pending = self._pending.get(digest)
+            if pending is None:
+                pending = self._pending[digest] = self._solver.submit(self._solve_frontier, digest, inputs)
+            return pending
+
+    def _solve_frontier(self, digest: str, inputs: MixInputs) -> Frontier:
+        try:
+            with self._db.reading() as s:
+                stored = get_frontier(s, digest)
+            if stored is not None:
+                found = Frontier.from_document(stored, len(inputs.codes))
+            else:
+                found = efficient_frontier(inputs)
+                try:
+                    with self._db.writing() as s:
+                        insert_frontier(s, content_hash=digest, document=found.to_document())
+                except SQLAlchemyError:
+                    # Kept in memory all the same; a later replica solves it once more.
+                    log.warning("could not store the frontier of %s", digest, exc_info=True)
+            with self._lock:
+                self._frontiers[digest] = found
+            return found
+        finally:
+            with self._lock:
+                self._pending.pop(digest, None)
 
     def _remember(self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any]) -> MixView:
         view = MixView.from_solved(version, digest, solved)
@@ -147,6 +204,13 @@ class MixCatalog:
         self._remember(plan.plan_id, request.version, digest, solved, doc)
         self._metrics.mixes.inc()
         return True, doc
+
+    def solve_frontier_later(self, plan_id: str, version: str) -> None:
+        """Start solving a published mix's frontier unless it is known or under way; returns at
+        once (the publish route calls it after its answer has gone out)."""
+        view = self.view(plan_id, version)
+        if view.solved.frontier is None and view.content_hash not in self._frontiers:
+            self._frontier_soon(view.content_hash, view.solved.inputs)
 
     @staticmethod
     def _same_or_conflict(

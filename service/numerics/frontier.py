@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -69,6 +70,26 @@ class Frontier:
     corner_returns: FloatArray      # (k,) increasing expected returns, first = min variance
     corner_weights: FloatArray      # (k, n)
     unbounded_above: bool = False
+
+    def to_document(self) -> dict[str, Any]:
+        """JSON-able form (floats as Python floats: their text round-trips bit for bit)."""
+        return {
+            "shape": "unbounded_above" if self.unbounded_above else "bounded",
+            "corner_returns": [float(x) for x in self.corner_returns],
+            "corner_weights": [[float(x) for x in row] for row in self.corner_weights],
+        }
+
+    @classmethod
+    def from_document(cls, doc: dict[str, Any], n: int) -> Frontier:
+        """Rebuild from ``to_document`` for a mix of ``n`` assets, without solving anything."""
+        returns = np.array(doc["corner_returns"], dtype=np.float64)
+        weights = np.array(doc["corner_weights"], dtype=np.float64)
+        k = returns.shape[0]
+        if returns.shape != (k,) or weights.shape != (k, n):
+            raise ValueError(f"frontier corners have shapes {returns.shape} and {weights.shape}, expected ({k},) and ({k}, {n})")
+        returns.setflags(write=False)
+        weights.setflags(write=False)
+        return cls(corner_returns=returns, corner_weights=weights, unbounded_above=doc["shape"] == "unbounded_above")
 
     def weights_at(self, target_return: float) -> FloatArray:
         """Weights of the frontier portfolio with expected return ``target_return``.

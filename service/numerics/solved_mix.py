@@ -10,7 +10,7 @@ whose JSON text round-trips bit for bit.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -36,9 +36,13 @@ class SolvedMix:
     inputs: MixInputs
     tangency: Portfolio
     min_variance: Portfolio
-    frontier: Frontier
+    # None until computed: solve_mix(frontier=False) leaves it for later (with_frontier).
+    frontier: Frontier | None
     cross_checks: tuple[CrossCheck, ...]
     kkt_residual: float            # max KKT residual of the exact tangency (<= 1e-10 or it raised)
+
+    def with_frontier(self, frontier: Frontier) -> SolvedMix:
+        return replace(self, frontier=frontier)
 
     def to_document(self) -> dict[str, Any]:
         """JSON-able form (floats, strings, lists); ``from_document`` inverts it exactly."""
@@ -55,11 +59,7 @@ class SolvedMix:
             },
             "tangency": _portfolio_out(self.tangency),
             "min_variance": _portfolio_out(self.min_variance),
-            "frontier": {
-                "shape": "unbounded_above" if self.frontier.unbounded_above else "bounded",
-                "corner_returns": _floats(self.frontier.corner_returns),
-                "corner_weights": [_floats(row) for row in self.frontier.corner_weights],
-            },
+            "frontier": None if self.frontier is None else self.frontier.to_document(),
             "cross_checks": [
                 {"method": c.method, "sharpe_ratio": float(c.sharpe_ratio),
                  "max_weight_gap": float(c.max_weight_gap), "sharpe_gap": float(c.sharpe_gap),
@@ -85,13 +85,7 @@ class SolvedMix:
             lower=_frozen(np.array([_bound_in(x) for x in raw["lower"]], dtype=np.float64), (n,), "inputs.lower"),
             upper=_frozen(np.array([_bound_in(x) for x in raw["upper"]], dtype=np.float64), (n,), "inputs.upper"),
         )
-        fr = doc["frontier"]
-        k = len(fr["corner_returns"])
-        frontier = Frontier(
-            corner_returns=_array(fr["corner_returns"], (k,), "frontier.corner_returns"),
-            corner_weights=_array(fr["corner_weights"], (k, n), "frontier.corner_weights"),
-            unbounded_above=fr["shape"] == "unbounded_above",
-        )
+        frontier = None if doc["frontier"] is None else Frontier.from_document(doc["frontier"], n)
         checks = tuple(
             CrossCheck(method=str(c["method"]), sharpe_ratio=float(c["sharpe_ratio"]),
                        max_weight_gap=float(c["max_weight_gap"]), sharpe_gap=float(c["sharpe_gap"]),
@@ -143,13 +137,15 @@ def _portfolio_in(raw: dict[str, Any], n: int, where: str) -> Portfolio:
                      sharpe_ratio=float(raw["sharpe_ratio"]), method=str(raw["method"]))
 
 
-def solve_mix(inputs: MixInputs, *, cross_check: bool = True) -> SolvedMix:
+def solve_mix(inputs: MixInputs, *, cross_check: bool = True, frontier: bool = True) -> SolvedMix:
     """Solve one validated mix exactly (tangency, minimum variance, frontier) and, unless
-    ``cross_check`` is false, run the three numerical routes against the tangency."""
+    ``cross_check`` is false, run the three numerical routes against the tangency.
+    ``frontier=False`` leaves the frontier (the costliest part at large N) for
+    ``efficient_frontier`` and ``SolvedMix.with_frontier`` later."""
     best, residual = tangency(inputs)
     lowest, low_solution = min_variance_with_solution(inputs)
     # The critical line starts at the minimum-variance active set: solved once, used twice.
-    frontier = frontier_from_min_variance(inputs, low_solution)
+    corners = frontier_from_min_variance(inputs, low_solution) if frontier else None
     checks = cross_checks(inputs, best) if cross_check else ()
-    return SolvedMix(inputs=inputs, tangency=best, min_variance=lowest, frontier=frontier,
+    return SolvedMix(inputs=inputs, tangency=best, min_variance=lowest, frontier=corners,
                      cross_checks=checks, kkt_residual=residual)

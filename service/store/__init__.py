@@ -21,9 +21,11 @@ from service.store.records import (
 )
 from service.store.repository import (
     get_allocation,
+    get_frontier,
     get_key,
     get_mix,
     get_plan,
+    insert_frontier,
     insert_key,
     insert_mix,
     insert_plan,
@@ -50,9 +52,11 @@ __all__ = [
     "MixRecord",
     "PlanRecord",
     "get_allocation",
+    "get_frontier",
     "get_key",
     "get_mix",
     "get_plan",
+    "insert_frontier",
     "insert_key",
     "insert_mix",
     "insert_plan",

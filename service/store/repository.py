@@ -18,7 +18,7 @@ from sqlalchemy.orm import Session
 
 from service.store.errors import Conflict
 from service.store.records import KeyRecord, MixRecord, PlanRecord
-from service.store.schema import Allocation, ApiKey, Mix, Plan, json_text, utc_now
+from service.store.schema import Allocation, ApiKey, Mix, Plan, StoredFrontier, json_text, utc_now
 
 
 def _insert(session: Session, table: Any) -> Insert:
@@ -192,3 +192,22 @@ def list_allocations(s: Session, plan_id: str, member_id: str, *, limit: int = 1
             .limit(limit)
         ).scalars()
     )
+
+
+def insert_frontier(s: Session, *, content_hash: str, document: dict[str, Any]) -> bool:
+    """Store a frontier once per content hash; False if one was there already (same content,
+    so the same frontier)."""
+    stmt = (
+        _insert(s, StoredFrontier)
+        .values(content_hash=content_hash, document=json_text(document), created_at=utc_now())
+        .on_conflict_do_nothing()
+        .execution_options(preserve_rowcount=True)
+    )
+    return bool(s.execute(stmt).rowcount == 1)  # type: ignore[attr-defined]
+
+
+def get_frontier(s: Session, content_hash: str) -> dict[str, Any] | None:
+    text = s.execute(
+        select(StoredFrontier.document).where(StoredFrontier.content_hash == content_hash)
+    ).scalar_one_or_none()
+    return None if text is None else orjson.loads(text)

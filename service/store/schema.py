@@ -167,3 +167,13 @@ class IdempotencyKey(Base):
     response: Mapped[str | None] = mapped_column(Text, nullable=True)
     created_at: Mapped[int] = mapped_column(BigInteger)  # unix seconds
     expires_at: Mapped[int] = mapped_column(BigInteger)
+
+
+class StoredFrontier(Base):
+    """A mix's exact frontier (corner portfolios), written once per content hash."""
+
+    __tablename__ = "frontiers"
+
+    content_hash: Mapped[str] = mapped_column(CHAR(64), primary_key=True)
+    document: Mapped[str] = mapped_column(Text)
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utc_now)

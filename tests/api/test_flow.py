@@ -266,7 +266,7 @@ async def test_readyz_fails_while_migrations_are_behind(empty_db_url: str) -> No
     db = Database(empty_db_url)
     try:
         db.upgrade()
-        downgrade(db.engine, "0001")
+        downgrade(db.engine, "0002")
         app = create_app(Settings(database_url=db.url), db, migrate=False)
         async with app.router.lifespan_context(app):
             async with httpx.AsyncClient(transport=httpx.ASGITransport(app=app), base_url="http://t") as c:
@@ -276,3 +276,30 @@ async def test_readyz_fails_while_migrations_are_behind(empty_db_url: str) -> No
                 assert (await c.get("/livez")).status_code == 200
     finally:
         db.close()
+
+
+async def test_frontier_is_solved_once_after_publish_and_stored(world: World, new_plan_id: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    from service.api import state as state_module
+    from service.api.metrics import Metrics
+    from service.api.state import AppState
+    from service.store import get_frontier
+
+    keys = await world.plan(new_plan_id)
+    mix = await world.publish(new_plan_id, keys)
+    first = await world.client.get(f"/v1/plans/{new_plan_id}/mixes/{DEMO_MIX['version']}/frontier", params={"points": 7}, headers=keys["portal"])
+    assert first.status_code == 200
+    with world.database.reading() as s:
+        assert get_frontier(s, mix["content_hash"]) is not None  # stored beside the mix
+    # Another replica (a fresh catalog) reads the stored frontier and never solves one.
+    def no_solving(*_: object) -> None:
+        raise AssertionError("the frontier was solved again")
+
+    monkeypatch.setattr(state_module, "efficient_frontier", no_solving)
+    replica = AppState(world.settings, world.database, Metrics())
+    try:
+        view, frontier = replica.mixes.frontier(new_plan_id, DEMO_MIX["version"])
+        assert frontier.corner_weights.shape[1] == len(view.codes)
+    finally:
+        replica.mixes.close()
+    again = await world.client.get(f"/v1/plans/{new_plan_id}/mixes/{DEMO_MIX['version']}/frontier", params={"points": 7}, headers=keys["portal"])
+    assert again.json() == first.json()

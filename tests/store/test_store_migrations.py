@@ -14,7 +14,8 @@ from service.store.revisions import downgrade, script_heads
 from service.store.schema import Base
 
 EXPECTED_TABLES = {
-    "alembic_version", "allocations", "api_keys", "chain_heads", "idempotency_keys", "mixes", "plans",
+    "alembic_version", "allocations", "api_keys", "chain_heads", "frontiers", "idempotency_keys", "mixes",
+    "plans",
 }
 
 
@@ -56,7 +57,7 @@ def test_models_match_the_migrations(db_url: str) -> None:
 
 
 def test_one_head_shipped_as_package_data() -> None:
-    assert script_heads() == frozenset({"0002"})
+    assert script_heads() == frozenset({"0003"})
     migrations = Path(__file__).resolve().parents[2] / "service" / "store" / "migrations"
     assert (migrations / "env.py").is_file()
 
@@ -82,7 +83,7 @@ def test_one_revision_behind_is_not_current(empty_db_url: str) -> None:
     db = Database(empty_db_url)
     try:
         db.upgrade()
-        downgrade(db.engine, "0001")
+        downgrade(db.engine, "0002")
         assert not db.migrations_current()  # /readyz reports not ready in this state
         db.upgrade()
         assert db.migrations_current()
