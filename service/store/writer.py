@@ -31,7 +31,7 @@ from typing import Any
 from sqlalchemy import Engine
 from sqlalchemy.exc import DBAPIError
 
-from service.store.chain import GENESIS_HASH, SEPARATOR, link_hash
+from service.store.chain import GENESIS_HASH, SEPARATOR
 from service.store.idempotency import (
     COMPLETE_SQL,
     IdempotencyRecord,
