@@ -6,6 +6,7 @@ from decimal import Decimal
 from typing import Any
 
 import httpx
+import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
@@ -119,3 +120,23 @@ async def test_batch_limit_is_413(world: World, new_plan_id: str) -> None:
                              json={"mix_version": DEMO_MIX["version"], "members": [member(i) for i in range(6)]}, headers=keys["portal"])
             assert r.status_code == 413 and r.headers["content-type"].startswith("application/problem+json")
     assert await checked(world, new_plan_id, keys) == 0
+
+
+@pytest.mark.parametrize("currency", ["USD", "JPY", "KWD"])
+def test_fast_amount_reading_is_exact(currency: str) -> None:
+    # Reference: money.parse_amount (Decimal, exact); the batch reader parses through float.
+    import orjson
+
+    from service.allocation import parse_amount
+    from service.api.batch_members import read_batch
+
+    e = {"USD": 2, "JPY": 0, "KWD": 3}[currency]
+    rng = np.random.default_rng(17)
+    whole = rng.integers(0, 10 ** (15 - e), 2000)
+    frac = rng.integers(0, 10**e, 2000) if e else np.zeros(2000, dtype=np.int64)
+    amounts = [f"{w}.{f:0{e}d}" if e else str(w) for w, f in zip(whole.tolist(), frac.tolist(), strict=True)]
+    amounts += ["0", "0.07" if e else "7", "1", str(10 ** (13 - e))]
+    members = [{"member_id": f"m{i}", "amount": a, "preference": {"risk_aversion": 2}} for i, a in enumerate(amounts)]
+    batch = read_batch(orjson.dumps({"mix_version": "v", "members": members}), currency, 10**6)
+    expected = [parse_amount("amount", a, currency) for a in amounts]
+    assert batch.columns.total.tolist() == expected
