@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-import itertools
 import secrets
+import threading
 from datetime import UTC, datetime
 from typing import Any
 
@@ -11,6 +11,7 @@ import orjson
 
 from service.allocation import (
     LossTolerance,
+    MixView,
     Preference,
     RiskAversion,
     RiskScore,
@@ -28,14 +29,26 @@ from .state import AppState, PlanView
 
 class _AllocationIds:
     """al_ + 80 random bits per process + a 48-bit counter: unique across replicas, ordered within
-    one (so the log's unique index grows at its end), and no system call per allocation."""
+    one (so the log's unique index grows at its end), and no system call per allocation. A batch
+    takes a block of consecutive counter values."""
 
     def __init__(self) -> None:
         self._stem = secrets.token_hex(10)
-        self._next = itertools.count(int.from_bytes(secrets.token_bytes(2), "big") << 32).__next__
+        self._counter = int.from_bytes(secrets.token_bytes(2), "big") << 32
+        self._lock = threading.Lock()
+
+    def _take(self, n: int) -> int:
+        with self._lock:
+            first = self._counter
+            self._counter += n
+        return first
 
     def __call__(self) -> str:
-        return f"al_{self._stem}{self._next():012x}"
+        return f"al_{self._stem}{self._take(1):012x}"
+
+    def block(self, n: int) -> list[str]:
+        first, stem = self._take(n), self._stem
+        return [f"al_{stem}{i:012x}" for i in range(first, first + n)]
 
 
 new_allocation_id = _AllocationIds()
@@ -61,13 +74,13 @@ def preference_of(p: PreferenceIn) -> tuple[Preference, dict[str, float | int]]:
     return RiskScore(p.risk_score), {"risk_score": p.risk_score}
 
 
-def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: str) -> dict[str, Any]:
-    """The allocation record for one member (not yet logged)."""
+def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: str) -> tuple[dict[str, Any], MixView]:
+    """The allocation record for one member (not yet logged), and the mix it was made with."""
     view = state.mixes.view(plan.plan_id, body.mix_version)
     preference, preference_doc = preference_of(body.preference)
     holdings = None if body.holdings is None else {"risky": body.holdings.risky, "safe": body.holdings.safe}
     account = account_from_request(plan.currency, body.amount, holdings, body.contribution)
-    return recommend(
+    record = recommend(
         allocation_id=new_allocation_id(),
         plan_id=plan.plan_id,
         member_id=body.member_id,
@@ -79,6 +92,7 @@ def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: s
         preference_document=preference_doc,
         account=account,
     )
+    return record, view
 
 
 def log_batch(

@@ -12,12 +12,12 @@ from starlette.responses import Response
 from service.allocation import render
 from service.store import get_allocation, list_allocations
 
+from . import idempotency
 from .allocating import answer, log_batch, rendered, utc_now_text
-from .bodies import parse_body, request_body_schema
 from .auth import Caller
+from .bodies import parse_body, request_body_schema
 from .deps import CallerDep, StateDep
 from .errors import NotFound
-from . import idempotency
 from .responses import AUTHED, json_response, problems, raw_json_response
 from .schemas import AllocationIn, AllocationListOut, AllocationOut
 from .state import AppState
@@ -48,8 +48,8 @@ async def allocate_one(state: AppState, caller: Caller, plan_id: str, raw: bytes
         return owned
     try:
         created_at = utc_now_text()
-        record = answer(state, plan, body, created_at=created_at)
-        doc = render(record, state.mixes.view(plan_id, body.mix_version).codes)
+        record, view = answer(state, plan, body, created_at=created_at)
+        doc = render(record, view.codes)
         payload = orjson.dumps(doc)
         completes = None if owned is None else owned.completion(201, payload)
         # The answer goes out only once its log row is committed: no unlogged recommendation exists.

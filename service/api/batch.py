@@ -9,7 +9,6 @@ members' order.
 from __future__ import annotations
 
 import asyncio
-import secrets
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,8 +22,8 @@ from service.allocation.batch import LIMIT_NAMES, BatchResult, allocate
 from service.allocation.batch_records import BatchContext, money_texts, numbers, record_texts
 from service.store import LogStream
 
-from .allocating import utc_now_text
 from . import idempotency
+from .allocating import new_allocation_id, utc_now_text
 from .batch_members import BatchRequest, read_batch
 from .bodies import request_body_schema
 from .deps import CallerDep, StateDep
@@ -48,20 +47,13 @@ class PreparedBatch:
     allocation_ids: list[str]
 
 
-def batch_allocation_ids(n: int) -> list[str]:
-    # One random stem per batch and the member's position: unique, ordered (so the unique
-    # index grows at its end), and no uuid4 per member.
-    stem = secrets.token_hex(13)
-    return [f"al_{stem}{i:06x}" for i in range(n)]
-
-
 def prepare(state: AppState, plan: PlanView, raw: bytes) -> PreparedBatch:
     """Read, validate and answer every member; nothing is written yet (all or nothing)."""
     request = read_batch(raw, plan.currency, state.settings.batch_limit)
     view = state.mixes.view(plan.plan_id, request.mix_version)
     result = allocate(request.columns, line_for(view, plan.policy), plan.policy, view.weights)
     context = BatchContext(plan.plan_id, view.version, view.content_hash, utc_now_text(), plan.currency)
-    return PreparedBatch(context, request, result, batch_allocation_ids(request.columns.size))
+    return PreparedBatch(context, request, result, new_allocation_id.block(request.columns.size))
 
 
 def feed(prepared: PreparedBatch, stream: LogStream, owned: idempotency.Claim | None) -> bytes:

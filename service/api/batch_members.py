@@ -22,14 +22,13 @@ from service.allocation.batch import MAX_LOSS, RISK_AVERSION, RISK_SCORE, TARGET
 from service.allocation.money import MAX_MINOR_UNITS, minor_exponent
 
 from .errors import PayloadTooLarge
-from .schemas import MEMBER_ID_PATTERN, BatchIn, Identifier, MemberIn
+from .schemas import IDENTIFIER_PATTERN, MEMBER_ID_PATTERN, BatchIn, MemberIn
 
 _MEMBER_KEYS = frozenset({"member_id", "amount", "preference", "holdings", "contribution"})
 _LOSS_KEYS = frozenset({"max_loss", "confidence", "horizon_years"})
 _SINGLE_KINDS = {"risk_aversion": RISK_AVERSION, "target_volatility": TARGET_VOLATILITY, "risk_score": RISK_SCORE}
 _IDS = re.compile(MEMBER_ID_PATTERN[1:-1].join(["(?:", "\n)*"]) + MEMBER_ID_PATTERN[1:-1])
-_VERSION = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}")
-assert Identifier  # the version pattern above is the schemas' Identifier pattern
+_VERSION = re.compile(IDENTIFIER_PATTERN[1:-1])
 
 
 @dataclass(frozen=True)

@@ -36,7 +36,8 @@ def _money(value: Any) -> str | int | float:
     return value
 
 Code = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$")]
-Identifier = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")]
+IDENTIFIER_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$"
+Identifier = Annotated[str, StringConstraints(pattern=IDENTIFIER_PATTERN)]
 # Printable ASCII without space, quote or backslash: ids go into log records unescaped.
 MEMBER_ID_PATTERN = r"^[!#-\[\]-~]{1,128}$"
 MemberId = Annotated[str, StringConstraints(min_length=1, max_length=128, pattern=MEMBER_ID_PATTERN)]
