@@ -3,7 +3,14 @@ migration command that can run again."""
 
 from __future__ import annotations
 
+import http.client
+import os
 import signal
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
 
 import httpx
 import pytest
@@ -90,3 +97,51 @@ async def test_the_lifespan_shutdown_also_marks_the_app_not_ready(empty_db_url: 
         assert app.state.mixline.shutting_down
     finally:
         db.close()
+
+
+@pytest.mark.slow
+def test_a_served_process_stops_being_ready_on_sigterm_and_exits_cleanly(tmp_path: Path) -> None:
+    """`mixline serve` for real: after SIGTERM, a connection it still holds never hears "ready"
+    again (503, or uvicorn closes it), and the process shuts down in order."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = int(s.getsockname()[1])
+    env = {**os.environ, "MIXLINE_DATABASE_URL": f"sqlite:///{tmp_path / 'serve.db'}"}
+    server = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+        env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+    )
+    connection = http.client.HTTPConnection("127.0.0.1", port, timeout=5)
+    try:
+        deadline = time.monotonic() + 30
+        while True:
+            try:
+                connection.request("GET", "/readyz")
+                answer = connection.getresponse()
+                answer.read()
+                if answer.status == 200:
+                    break
+            except OSError:
+                connection.close()
+            assert time.monotonic() < deadline and server.poll() is None, "the server did not start"
+            time.sleep(0.2)
+        server.send_signal(signal.SIGTERM)
+        try:
+            connection.request("GET", "/readyz")
+            after = connection.getresponse()
+            after.read()
+            assert after.status == 503
+        except (OSError, http.client.HTTPException):
+            pass  # closed by the server's shutdown: not ready either
+        # uvicorn finishes its shutdown (the lifespan's, which flushes the log writer), then
+        # raises the signal it caught again, so the exit status says SIGTERM.
+        assert server.wait(timeout=30) in (0, -signal.SIGTERM)
+        assert server.stderr is not None
+        assert "Application shutdown complete" in server.stderr.read().decode()
+    finally:
+        connection.close()
+        if server.poll() is None:
+            server.kill()
+            server.wait()
+        if server.stderr is not None:
+            server.stderr.close()
