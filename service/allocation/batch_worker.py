@@ -71,7 +71,7 @@ def serve_batches(conn: Connection) -> None:
         raw = conn.recv_bytes()
         try:
             request = read_batch(parse_json(raw), message[1])
-        except Exception as error:  # noqa: BLE001 - every failure is reported, the loop goes on
+        except Exception as error:
             conn.send(("refused", Refusal.of(error)))
             continue
         del raw
@@ -85,7 +85,7 @@ def serve_batches(conn: Connection) -> None:
                 request.members, plan_id=plan_id, currency=currency, policy=policy, view=terms,
                 created_at=created_at, new_ids=ids.block, locate=request.locate,
             )
-        except Exception as error:  # noqa: BLE001
+        except Exception as error:
             conn.send(("refused", Refusal.of(error)))
             continue
         del request
@@ -98,7 +98,7 @@ def serve_batches(conn: Connection) -> None:
                 rows = slice(start, start + STREAM_CHUNK)
                 conn.send(("rows", list(d.allocation_ids[rows]), list(d.member_ids[rows]), prepared.records(rows)))
             body = prepared.batch_body(STREAM_CHUNK)
-        except Exception as error:  # noqa: BLE001
+        except Exception as error:
             conn.send(("refused", Refusal.of(error)))
             continue
         conn.send(("answer",))

@@ -133,7 +133,7 @@ def _verify(session: Session, plan_id: str) -> ChainReport:
 
 
 def _fault(
-    link: Row[Any], plan_id: str, expected_seq: int, prev_hash: str, head_seq: int
+    link: Row[Any, Any, Any, Any, Any, Any, Any, Any], plan_id: str, expected_seq: int, prev_hash: str, head_seq: int
 ) -> str:
     """Why ``link`` failed; the checks in the order that names the likeliest cause."""
     seq, allocation_id, member_id, mix_version, created_at, body, stored_prev, row_hash = link

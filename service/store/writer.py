@@ -551,7 +551,7 @@ class ChainWriter:
     def _write_sqlite(self, dbapi: Any, jobs: list[_Job]) -> None:
         dbapi.execute("BEGIN IMMEDIATE")
         self._key_operations(dbapi.cursor(), jobs, "?")
-        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})  # type: ignore[union-attr]
+        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})
         heads: dict[str, tuple[int, str]] = {}
         for plan_id in plan_ids:
             found = dbapi.execute(
@@ -577,7 +577,7 @@ class ChainWriter:
             self._checkpointer.committed(sum(job.size for job in jobs))
 
     def _write_postgresql(self, dbapi: Any, jobs: list[_Job]) -> None:
-        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})  # type: ignore[union-attr]
+        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})
         with dbapi.cursor() as cursor:
             self._key_operations(cursor, jobs, "%s")
             heads = self._lock_heads_postgresql(cursor, plan_ids)
