@@ -372,8 +372,9 @@ class ChainWriter:
             rows += job.size
         return group, None, False
 
-    # Rows of other requests are written between a stream's chunks; a chunk stays small so that
-    # they wait for at most one chunk's transaction.
+    # Rows of other requests are written between a stream's transactions, each of at most this
+    # many rows (a few milliseconds on SQLite), so that they wait for at most one of them.
+    STREAM_ROWS_PER_TRANSACTION = 256
     STREAM_POLL_SECONDS = 0.002
 
     def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
@@ -389,12 +390,20 @@ class ChainWriter:
                 chunk = stream.next_chunk(self.STREAM_POLL_SECONDS)
                 if isinstance(chunk, Finished):
                     break
-                if chunk is not None:
+                if chunk is None:
+                    stopping = self._serve_waiting(deferred, in_flight) or stopping
+                    continue
+                for rows in range(0, len(chunk.allocation_ids), self.STREAM_ROWS_PER_TRANSACTION):
+                    part = slice(rows, rows + self.STREAM_ROWS_PER_TRANSACTION)
+                    piece = LogBatch(
+                        chunk.plan_id, chunk.mix_version, chunk.created_at, chunk.allocation_ids[part],
+                        chunk.member_ids[part], chunk.bodies[part], batch_id=chunk.batch_id,
+                    )
                     started = time.monotonic()
-                    self._write_retrying([_Job(chunk, len(chunk.allocation_ids), Future())])
+                    self._write_retrying([_Job(piece, len(piece.allocation_ids), Future())])
                     if self.group_written is not None:
-                        self._report(1, len(chunk.allocation_ids), time.monotonic() - started)
-                stopping = self._serve_waiting(deferred, in_flight) or stopping
+                        self._report(1, len(piece.allocation_ids), time.monotonic() - started)
+                    stopping = self._serve_waiting(deferred, in_flight) or stopping
             self._batch_state(stream, VISIBLE, chunk.completes)
         except BaseException as error:
             try:
