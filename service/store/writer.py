@@ -373,8 +373,9 @@ class ChainWriter:
         return group, None, False
 
     # Rows of other requests are written between a stream's transactions, each of at most this
-    # many rows (a few milliseconds on SQLite), so that they wait for at most one of them.
-    STREAM_ROWS_PER_TRANSACTION = 256
+    # many rows (a few milliseconds), so that they wait for at most one of them. PostgreSQL pays
+    # an fsync per commit and lets other plans' requests commit meanwhile: larger pieces there.
+    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 256, "postgresql": 1024}
     STREAM_POLL_SECONDS = 0.002
 
     def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
@@ -393,8 +394,9 @@ class ChainWriter:
                 if chunk is None:
                     stopping = self._serve_waiting(deferred, in_flight) or stopping
                     continue
-                for rows in range(0, len(chunk.allocation_ids), self.STREAM_ROWS_PER_TRANSACTION):
-                    part = slice(rows, rows + self.STREAM_ROWS_PER_TRANSACTION)
+                step = self.STREAM_ROWS_PER_TRANSACTION.get(self._dialect, 256)
+                for rows in range(0, len(chunk.allocation_ids), step):
+                    part = slice(rows, rows + step)
                     piece = LogBatch(
                         chunk.plan_id, chunk.mix_version, chunk.created_at, chunk.allocation_ids[part],
                         chunk.member_ids[part], chunk.bodies[part], batch_id=chunk.batch_id,
