@@ -9,6 +9,7 @@ from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
 from .engine import Allocations, Setting, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .identifiers import AllocationIds
+from .impact import Impact, impact
 from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
 from .line import AllocationLine
 from .members import MEMBER_ID_PATTERN, Members, read_members
@@ -42,6 +43,7 @@ __all__ = [
     "Context",
     "Decisions",
     "FieldIssue",
+    "Impact",
     "MemberErrors",
     "Members",
     "MixTerms",
@@ -62,6 +64,7 @@ __all__ = [
     "disclosures_for",
     "format_units",
     "frontier_document",
+    "impact",
     "is_finite_document",
     "line_for",
     "minor_exponent",

@@ -288,6 +288,33 @@ class BatchOut(BaseModel):
     results: list[BatchResultOut]
 
 
+class ChangeSummaryOut(BaseModel):
+    mean: float
+    p05: float
+    p50: float
+    p95: float
+    max_abs: float
+
+
+class MoveOut(BaseModel):
+    member_id: str
+    before: float
+    after: float
+
+
+class ImpactOut(BaseModel):
+    """A candidate version's effect on the members whose latest allocation is under the active one."""
+
+    plan_id: str
+    from_version: str
+    to_version: str
+    members: int
+    risky_fraction_change: ChangeSummaryOut
+    limited_by: dict[str, dict[str, int]]
+    largest_moves: list[MoveOut]
+    refused_under_candidate: int
+
+
 class AllocationListOut(BaseModel):
     plan_id: str
     member_id: str

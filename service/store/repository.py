@@ -12,7 +12,7 @@ from __future__ import annotations
 from typing import Any
 
 import orjson
-from sqlalchemy import exists, or_, select, update
+from sqlalchemy import exists, func, or_, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -209,6 +209,25 @@ def list_allocations(s: Session, plan_id: str, member_id: str, *, limit: int = 1
             .where(Allocation.plan_id == plan_id, Allocation.member_id == member_id, _visible())
             .order_by(Allocation.seq.desc())
             .limit(limit)
+        ).scalars()
+    )
+
+
+def latest_allocations(s: Session, plan_id: str, mix_version: str) -> list[str]:
+    """The bodies of the plan's members' latest logged allocations, for the members whose latest
+    one was made with ``mix_version`` (one query; the (plan, member, seq) index serves the max)."""
+    latest = (
+        select(Allocation.member_id, func.max(Allocation.seq).label("seq"))
+        .where(Allocation.plan_id == plan_id, _visible())
+        .group_by(Allocation.member_id)
+        .subquery()
+    )
+    return list(
+        s.execute(
+            select(Allocation.body)
+            .join(latest, (Allocation.member_id == latest.c.member_id) & (Allocation.seq == latest.c.seq))
+            .where(Allocation.plan_id == plan_id, Allocation.mix_version == mix_version)
+            .order_by(Allocation.seq)
         ).scalars()
     )
 

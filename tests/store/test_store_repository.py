@@ -40,7 +40,7 @@ def test_public_names_are_exactly_the_interface() -> None:
             "GENESIS_HASH", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream", "IdempotencyCompletion", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
-            "list_allocations", "secret_hash", "secret_matches", "set_active_version",
+            "latest_allocations", "list_allocations", "secret_hash", "secret_matches", "set_active_version",
             "upsert_key", "verify_chain",
         ]
     )
