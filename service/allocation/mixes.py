@@ -16,7 +16,14 @@ from typing import Any
 import numpy as np
 import orjson
 
-from service.numerics import Frontier, MixInputs, Portfolio, SolvedMix, build_inputs, solve_mix
+from service.numerics import (
+    Frontier,
+    MixInputs,
+    Portfolio,
+    SolvedMix,
+    build_inputs,
+    solve_mix,
+)
 
 # Version of the canonical form below; part of the hash so a future change cannot collide.
 CANONICAL_FORM = "mixline.mix.v1"
@@ -30,9 +37,14 @@ def canonical_inputs(
     covariance: Sequence[Sequence[float]] | None,
     bounds: Mapping[str, Sequence[float]] | None,
     long_only: bool,
+    factor_model: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """Everything that determines the solution, in one canonical shape (cross_check is not in it)."""
-    return {
+    """Everything that determines the solution, in one canonical shape (cross_check is not in it).
+
+    A factor model is kept as published (loadings, factor_covariance, specific_volatility); the
+    key is present only when one is given, so the hashes of correlation and covariance mixes are
+    what they were before factor models existed."""
+    canonical = {
         "form": CANONICAL_FORM,
         "assets": [
             {
@@ -51,6 +63,13 @@ def canonical_inputs(
         else {code: [float(lo), float(hi)] for code, (lo, hi) in sorted(bounds.items())},
         "long_only": bool(long_only),
     }
+    if factor_model is not None:
+        canonical["factor_model"] = {
+            "loadings": [list(row) for row in factor_model["loadings"]],
+            "factor_covariance": [list(row) for row in factor_model["factor_covariance"]],
+            "specific_volatility": list(factor_model["specific_volatility"]),
+        }
+    return canonical
 
 
 def content_hash(canonical: Mapping[str, Any]) -> str:
@@ -69,6 +88,7 @@ def inputs_from_canonical(canonical: Mapping[str, Any], *, max_condition_number:
         volatilities=None if all(v is None for v in vols) else vols,
         correlation=canonical["correlation"],
         covariance=canonical["covariance"],
+        factor_model=canonical.get("factor_model"),
         bounds=None if bounds is None else {k: (v[0], v[1]) for k, v in bounds.items()},
         long_only=canonical["long_only"],
         max_condition_number=max_condition_number,

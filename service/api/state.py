@@ -108,18 +108,26 @@ class MixCatalog:
                 found = Frontier.from_document(stored, len(inputs.codes))
             else:
                 found = efficient_frontier(inputs)
+                # Stored next on the same worker: whoever waits for this frontier is answered
+                # from memory without waiting for the database.
                 try:
-                    with self._db.writing() as s:
-                        insert_frontier(s, content_hash=digest, document=found.to_document())
-                except SQLAlchemyError:
-                    # Kept in memory all the same; a later replica solves it once more.
-                    log.warning("could not store the frontier of %s", digest, exc_info=True)
+                    self._solver.submit(self._store_frontier, digest, found)
+                except RuntimeError:  # shutting down: store it now
+                    self._store_frontier(digest, found)
             with self._lock:
                 self._frontiers[digest] = found
             return found
         finally:
             with self._lock:
                 self._pending.pop(digest, None)
+
+    def _store_frontier(self, digest: str, found: Frontier) -> None:
+        try:
+            with self._db.writing() as s:
+                insert_frontier(s, content_hash=digest, document=found.to_document())
+        except SQLAlchemyError:
+            # Kept in memory all the same; a later replica solves it once more.
+            log.warning("could not store the frontier of %s", digest, exc_info=True)
 
     def _remember(self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any]) -> MixView:
         view = MixView.from_solved(version, digest, solved)
@@ -169,6 +177,7 @@ class MixCatalog:
             covariance=request.covariance,
             bounds=request.bounds,
             long_only=request.long_only,
+            factor_model=None if request.factor_model is None else request.factor_model.model_dump(),
         )
         digest = content_hash(canonical)
         existing = self._load(plan.plan_id, request.version)
