@@ -39,7 +39,7 @@ from service.numerics.portfolio import Portfolio, portfolio_from_weights
 from service.numerics.risk import FactorRisk, Risk
 from service.numerics.warm_start import min_variance_start
 
-__all__ = [
+__all__ = ["corner_kkt_residuals", 
     "UNBOUNDED_TOP_FACTOR",
     "Frontier",
     "best_sharpe_on_frontier",
@@ -672,4 +672,48 @@ def best_sharpe_on_frontier(frontier: Frontier, inputs: MixInputs) -> FloatArray
             if value > best:
                 best, best_w = value, w
     out: FloatArray = np.array(best_w, copy=True)
+    return out
+
+
+def corner_kkt_residuals(frontier: Frontier, inputs: MixInputs) -> FloatArray:
+    """Scale-free KKT residual of every corner as a minimum-variance portfolio for its return.
+
+    Corner k minimises w'Sw/2 - lambda mu'w on {1'w = 1, lo <= w <= hi} for some lambda >= 0:
+    S w - lambda mu - gamma 1 vanishes on the assets free on the segment from corner k (the
+    one before it, for the last corner), and is a multiplier of the right sign on assets at
+    a bound. (lambda, gamma) are fitted by least squares on those free assets; the residual
+    is the worst violation measured against the size of the terms in S w, with the bounds,
+    the budget and lambda >= 0 (weights within 1e-12 of a bound count as at it). An independent check of the critical line (products with S
+    only, O(corners n k) for a factor model): nothing of the solver's state is used.
+    """
+    w_all = frontier.corner_weights
+    count = w_all.shape[0]
+    mu, lo, hi = inputs.expected_returns, inputs.lower, inputs.upper
+    sw_all = inputs.risk.times(w_all)
+    diag_max = float(np.max(inputs.risk.diagonal))
+    mu_scale = float(np.max(np.abs(mu)))
+    out = np.empty(count)
+    for k in range(count):
+        w, sw = w_all[k], sw_all[k]
+        if count == 1:
+            mid = w
+        else:
+            other = w_all[k + 1] if k + 1 < count else w_all[k - 1]
+            mid = 0.5 * (w + other)
+        # Weights within rounding of a bound count as at the bound (a tie of two events
+        # can leave 1e-16 on an asset that the next face holds at its bound).
+        tol = 1e-12 * max(1.0, float(np.max(np.abs(w))))
+        free = (mid > lo + tol) & (mid < hi - tol)
+        side = np.where(free, 0.0, np.where(w <= lo + tol, 1.0, -1.0))
+        if np.count_nonzero(free) >= 2:
+            design = np.column_stack([mu[free], np.ones(int(np.count_nonzero(free)))])
+            (lam, gamma), *_ = np.linalg.lstsq(design, sw[free], rcond=None)
+        else:
+            lam, gamma = 0.0, float(sw[free].sum()) if free.any() else 0.0
+        g = sw - lam * mu - gamma
+        worst = max(float(np.max(np.where(free, np.abs(g), -side * g))), 0.0, -float(lam))
+        scale = max(float(np.max(np.abs(sw))), diag_max * float(np.abs(w).sum()), abs(float(gamma)),
+                    abs(float(lam)) * mu_scale, np.finfo(float).tiny)
+        primal = max(float(np.max(lo - w)), float(np.max(w - hi)), abs(float(w.sum()) - 1.0), 0.0)
+        out[k] = max(worst / scale, primal / max(1.0, float(np.max(np.abs(w)))))
     return out

@@ -217,7 +217,7 @@ def _bounds(codes: tuple[str, ...], bounds: Mapping[str, tuple[float, float]] | 
 
 
 def build_inputs(codes: Sequence[str], expected_returns: Sequence[float], risk_free_rate: float, *,
-                 volatilities: Sequence[float] | None = None,
+                 volatilities: Sequence[float | None] | None = None,
                  correlation: Sequence[Sequence[float]] | None = None,
                  covariance: Sequence[Sequence[float]] | None = None,
                  factor_model: Mapping[str, Any] | None = None,
@@ -245,8 +245,17 @@ def build_inputs(codes: Sequence[str], expected_returns: Sequence[float], risk_f
         raise InputError("risk_free_rate", f"must be finite, got {rf}")
 
     vols: FloatArray | None = None
+    # With a covariance or a factor model some volatilities may be left out (None): only the
+    # given ones are checked against it. A correlation needs all of them.
+    vols_given: npt.NDArray[np.bool_] | None = None
     if volatilities is not None:
-        vols = _finite_vector(volatilities, n, "volatility", "assets[{i}].volatility", "volatilities")
+        listed = list(volatilities)
+        vols_given = np.array([v is not None for v in listed], dtype=bool)
+        if correlation is not None and not vols_given.all():
+            i = int(np.flatnonzero(~vols_given)[0])
+            raise InputError(f"assets[{i}].volatility", "required when a correlation matrix is given")
+        filled = [1.0 if v is None else v for v in listed]
+        vols = _finite_vector(filled, n, "volatility", "assets[{i}].volatility", "volatilities")
         bad = np.flatnonzero(vols <= 0.0)
         if bad.size:
             i = int(bad[0])
@@ -261,7 +270,7 @@ def build_inputs(codes: Sequence[str], expected_returns: Sequence[float], risk_f
 
     risk: Risk
     if factor_model is not None:
-        risk = _factor_risk(factor_model, n, vols, max_condition_number)
+        risk = _factor_risk(factor_model, n, vols, vols_given, max_condition_number)
     elif correlation is not None:
         if vols is None:
             raise InputError("correlation", "correlation needs a volatility for every asset")
@@ -288,7 +297,7 @@ def build_inputs(codes: Sequence[str], expected_returns: Sequence[float], risk_f
         if bad.size:
             i = int(bad[0])
             raise InputError(f"covariance[{i}][{i}]", f"variances on the diagonal must be > 0, got {diag[i]:g}")
-        _volatilities_agree(np.sqrt(diag), vols, "sqrt(covariance[{i}][{i}])")
+        _volatilities_agree(np.sqrt(diag), vols, vols_given, "sqrt(covariance[{i}][{i}])")
         cov = 0.5 * (cov + cov.T)
         _check_spectrum(cov, "covariance", max_condition_number)
     if factor_model is None:
@@ -299,10 +308,13 @@ def build_inputs(codes: Sequence[str], expected_returns: Sequence[float], risk_f
                      risk_free_rate=rf, lower=_frozen(lower), upper=_frozen(upper))
 
 
-def _volatilities_agree(implied: FloatArray, vols: FloatArray | None, source: str) -> None:
+def _volatilities_agree(implied: FloatArray, vols: FloatArray | None, given: npt.NDArray[np.bool_] | None,
+                        source: str) -> None:
     if vols is None:
         return
     gap = np.abs(implied - vols) / vols
+    if given is not None:
+        gap[~given] = 0.0
     if gap.max() > _VOLATILITY_AGREEMENT_RTOL:
         i = int(np.argmax(gap))
         raise InputError(f"assets[{i}].volatility",
@@ -310,7 +322,7 @@ def _volatilities_agree(implied: FloatArray, vols: FloatArray | None, source: st
 
 
 def _factor_risk(model: Mapping[str, Any], n: int, vols: FloatArray | None,
-                 max_condition_number: float) -> FactorRisk:
+                 given: npt.NDArray[np.bool_] | None, max_condition_number: float) -> FactorRisk:
     """Validate a factor model (shapes, finite, F symmetric PSD, d > 0, k <= MAX_FACTORS).
 
     The covariance B F B' + D is positive definite because D is; its condition number is
@@ -351,7 +363,7 @@ def _factor_risk(model: Mapping[str, Any], n: int, vols: FloatArray | None,
         raise InputError(f"factor_model.specific_volatility[{i}]", f"specific volatility must be > 0, got {d[i]:g}")
     risk = FactorRisk(FactorModel(loadings=_frozen(b), factor_covariance=_frozen(f),
                                   specific_volatility=_frozen(d)))
-    _volatilities_agree(np.sqrt(risk.diagonal), vols,
+    _volatilities_agree(np.sqrt(risk.diagonal), vols, given,
                         "the factor model's sqrt((B F B')[{i}][{i}] + specific_volatility[{i}]^2)")
     d2 = risk.d2
     top = float(np.linalg.eigvalsh(risk.g.T @ risk.g)[-1]) if risk.rank else 0.0
