@@ -104,14 +104,16 @@ def solve(canonical: Mapping[str, Any], *, cross_check: bool, max_condition_numb
     )
 
 
-def _clean(x: float) -> float:
-    # -0.0 and 1e-17 noise in weights read as errors to people; exact zeros stay zeros.
-    return 0.0 if abs(x) < 1e-15 else float(x)
+def _cleaned_weights(codes: Sequence[str], weights: np.ndarray) -> dict[str, float]:
+    """Weights by code. -0.0 and 1e-17 noise in weights read as errors to people; exact zeros
+    stay zeros. Vectorised: a 100-point frontier of 2,000 assets has 200,000 weights."""
+    values = np.where(np.abs(weights) < 1e-15, 0.0, weights).tolist()
+    return dict(zip(codes, values, strict=True))
 
 
 def portfolio_document(p: Portfolio, codes: Sequence[str]) -> dict[str, Any]:
     return {
-        "weights": {code: _clean(w) for code, w in zip(codes, p.weights, strict=True)},
+        "weights": _cleaned_weights(codes, p.weights),
         "expected_return": p.expected_return,
         "volatility": p.volatility,
         "sharpe_ratio": p.sharpe_ratio,
@@ -182,7 +184,7 @@ def frontier_document(view: MixView, frontier: Frontier, points: int) -> dict[st
                 "expected_return": p.expected_return,
                 "volatility": p.volatility,
                 "sharpe_ratio": p.sharpe_ratio,
-                "weights": {c: _clean(w) for c, w in zip(codes, p.weights, strict=True)},
+                "weights": _cleaned_weights(codes, p.weights),
             }
             for p in frontier.sample(points, solved.inputs)
         ],

@@ -39,10 +39,11 @@ from service.numerics.portfolio import Portfolio, portfolio_from_weights
 from service.numerics.risk import FactorRisk, Risk
 from service.numerics.warm_start import min_variance_start
 
-__all__ = ["corner_kkt_residuals", 
+__all__ = [
     "UNBOUNDED_TOP_FACTOR",
     "Frontier",
     "best_sharpe_on_frontier",
+    "corner_kkt_residuals",
     "efficient_frontier",
     "frontier_from_min_variance",
 ]
@@ -62,6 +63,8 @@ _REFRESH_EVERY = 256
 _REFACTOR_RTOL = 1e-8
 _REFINE_RTOL = 3e-11
 _RETURN_RTOL = 1e-12
+# Frontier.corner keeps every this many corners in full and replays the changes after them.
+_CHECKPOINT_EVERY = 32
 
 
 @dataclass(frozen=True, eq=False)
@@ -69,33 +72,104 @@ class Frontier:
     """The exact efficient frontier. Between consecutive corner portfolios the weights are
     affine in the target expected return, so any point is an exact interpolation - no re-solve.
 
+    Consecutive corners differ only in the assets that were free between them (a dozen of
+    thousands, typically), so the corners after the first are held as those changes:
+    ``change_counts[k]`` assets change from corner k to k + 1, listed in order in
+    ``change_assets`` with their new ``change_weights``. A 2,000-asset frontier of ~4,000
+    corners is then ~40,000 numbers instead of 8 million, both in memory and stored; the full
+    corner matrix ``corner_weights`` is formed only when asked for.
+
     ``unbounded_above`` marks a frontier without a top (no bounds): the last two corners
     then span a ray and ``weights_at`` extrapolates along it above the last corner.
     """
 
     corner_returns: FloatArray      # (k,) increasing expected returns, first = min variance
-    corner_weights: FloatArray      # (k, n)
+    first_weights: FloatArray       # (n,) the minimum-variance corner
+    change_counts: IndexArray       # (k - 1,)
+    change_assets: IndexArray       # (sum of counts,)
+    change_weights: FloatArray      # (sum of counts,)
     unbounded_above: bool = False
 
-    def to_document(self) -> dict[str, Any]:
-        """JSON-able form (floats as Python floats: their text round-trips bit for bit).
+    def __post_init__(self) -> None:
+        k, n = self.corner_returns.shape[0], self.first_weights.shape[0]
+        counts, assets = self.change_counts, self.change_assets
+        if self.corner_returns.ndim != 1 or self.first_weights.ndim != 1 or counts.shape != (max(k - 1, 0),) \
+                or assets.shape != self.change_weights.shape or int(counts.sum()) != assets.shape[0] \
+                or (assets.size and not 0 <= int(assets.min()) <= int(assets.max()) < n):
+            raise ValueError("frontier changes do not fit the corners and assets they describe")
+        for a in (self.corner_returns, self.first_weights, counts, assets, self.change_weights):
+            a.setflags(write=False)
+        object.__setattr__(self, "_ends", np.cumsum(counts))
+        object.__setattr__(self, "_checkpoints", None)
+        object.__setattr__(self, "_dense", None)
 
-        Consecutive corners differ only in the assets that were free between them and the
-        one that moved (a dozen of thousands, typically), so corners after the first are
-        written as those changes: ``counts[k]`` assets changed from corner k to k + 1,
-        listed in ``assets`` with their new ``weights``. A 2,000-asset frontier of ~4,000
-        corners is ~40,000 numbers instead of 8 million.
-        """
-        w = self.corner_weights
-        changed = w[1:] != w[:-1]
-        rows, assets = np.nonzero(changed)
-        counts = np.bincount(rows, minlength=max(w.shape[0] - 1, 0))
+    @classmethod
+    def from_corners(cls, corner_returns: FloatArray, corner_weights: FloatArray,
+                     unbounded_above: bool = False) -> Frontier:
+        """A frontier from its full (k, n) corner matrix."""
+        w = np.asarray(corner_weights, dtype=np.float64)
+        rows, assets = np.nonzero(w[1:] != w[:-1])
+        counts = np.bincount(rows, minlength=max(w.shape[0] - 1, 0)).astype(np.intp)
+        return cls(corner_returns=np.array(corner_returns, dtype=np.float64), first_weights=np.array(w[0]),
+                   change_counts=counts, change_assets=assets.astype(np.intp), change_weights=w[1:][rows, assets],
+                   unbounded_above=unbounded_above)
+
+    @property
+    def n(self) -> int:
+        return int(self.first_weights.shape[0])
+
+    @property
+    def corner_weights(self) -> FloatArray:
+        """The (k, n) matrix of every corner (formed on first use, then kept)."""
+        dense: FloatArray | None = self._dense  # type: ignore[attr-defined]
+        if dense is None:
+            k = self.corner_returns.shape[0]
+            dense = np.empty((k, self.n))
+            dense[0] = self.first_weights
+            for row in range(1, k):
+                dense[row] = dense[row - 1]
+                part = self._part(row)
+                dense[row, self.change_assets[part]] = self.change_weights[part]
+            dense.setflags(write=False)
+            object.__setattr__(self, "_dense", dense)
+        return dense
+
+    def _part(self, row: int) -> slice:
+        """Where the changes from corner row - 1 to corner row are listed."""
+        end = int(self._ends[row - 1])  # type: ignore[attr-defined]
+        return slice(end - int(self.change_counts[row - 1]), end)
+
+    def corner(self, k: int) -> FloatArray:
+        """Corner k (a fresh array), from the nearest kept corner at most _CHECKPOINT_EVERY back."""
+        dense: FloatArray | None = self._dense  # type: ignore[attr-defined]
+        if dense is not None:
+            return np.array(dense[k])
+        checkpoints: list[FloatArray] | None = self._checkpoints  # type: ignore[attr-defined]
+        if checkpoints is None:
+            checkpoints = []
+            row_w = np.array(self.first_weights)
+            for row in range(self.corner_returns.shape[0]):
+                if row:
+                    part = self._part(row)
+                    row_w[self.change_assets[part]] = self.change_weights[part]
+                if row % _CHECKPOINT_EVERY == 0:
+                    checkpoints.append(row_w.copy())
+            object.__setattr__(self, "_checkpoints", checkpoints)
+        base = k - k % _CHECKPOINT_EVERY
+        out = np.array(checkpoints[base // _CHECKPOINT_EVERY])
+        for row in range(base + 1, k + 1):
+            part = self._part(row)
+            out[self.change_assets[part]] = self.change_weights[part]
+        return out
+
+    def to_document(self) -> dict[str, Any]:
+        """JSON-able form (floats as Python floats: their text round-trips bit for bit)."""
         return {
             "shape": "unbounded_above" if self.unbounded_above else "bounded",
             "corner_returns": self.corner_returns.tolist(),
-            "first_weights": w[0].tolist(),
-            "changes": {"counts": counts.tolist(), "assets": assets.tolist(),
-                        "weights": w[1:][rows, assets].tolist()},
+            "first_weights": self.first_weights.tolist(),
+            "changes": {"counts": self.change_counts.tolist(), "assets": self.change_assets.tolist(),
+                        "weights": self.change_weights.tolist()},
         }
 
     @classmethod
@@ -103,30 +177,23 @@ class Frontier:
         """Rebuild from ``to_document`` for a mix of ``n`` assets, without solving anything
         (documents that list every corner in full, ``corner_weights``, are read too)."""
         returns = np.array(doc["corner_returns"], dtype=np.float64)
+        unbounded = doc["shape"] == "unbounded_above"
         k = returns.shape[0]
         if "corner_weights" in doc:
             weights = np.array(doc["corner_weights"], dtype=np.float64)
-        else:
-            first = np.array(doc["first_weights"], dtype=np.float64)
-            changes = doc["changes"]
-            counts = np.array(changes["counts"], dtype=np.intp)
-            assets = np.array(changes["assets"], dtype=np.intp)
-            values = np.array(changes["weights"], dtype=np.float64)
-            if first.shape != (n,) or counts.shape != (max(k - 1, 0),) or assets.shape != values.shape \
-                    or int(counts.sum()) != assets.shape[0] or (assets.size and not 0 <= int(assets.min()) <= int(assets.max()) < n):
-                raise ValueError("frontier changes do not fit the corners and assets they describe")
-            weights = np.empty((k, n))
-            weights[0] = first
-            ends = np.cumsum(counts)
-            for row in range(1, k):
-                weights[row] = weights[row - 1]
-                part = slice(int(ends[row - 1] - counts[row - 1]), int(ends[row - 1]))
-                weights[row, assets[part]] = values[part]
-        if returns.shape != (k,) or weights.shape != (k, n):
-            raise ValueError(f"frontier corners have shapes {returns.shape} and {weights.shape}, expected ({k},) and ({k}, {n})")
-        returns.setflags(write=False)
-        weights.setflags(write=False)
-        return cls(corner_returns=returns, corner_weights=weights, unbounded_above=doc["shape"] == "unbounded_above")
+            if returns.shape != (k,) or weights.shape != (k, n):
+                raise ValueError(f"frontier corners have shapes {returns.shape} and {weights.shape}, "
+                                 f"expected ({k},) and ({k}, {n})")
+            return cls.from_corners(returns, weights, unbounded)
+        changes = doc["changes"]
+        first = np.array(doc["first_weights"], dtype=np.float64)
+        if first.shape != (n,):
+            raise ValueError(f"frontier's first corner has shape {first.shape}, expected ({n},)")
+        return cls(corner_returns=returns, first_weights=first,
+                   change_counts=np.array(changes["counts"], dtype=np.intp).reshape(-1),
+                   change_assets=np.array(changes["assets"], dtype=np.intp).reshape(-1),
+                   change_weights=np.array(changes["weights"], dtype=np.float64).reshape(-1),
+                   unbounded_above=unbounded)
 
     def weights_at(self, target_return: float) -> FloatArray:
         """Weights of the frontier portfolio with expected return ``target_return``.
@@ -139,7 +206,7 @@ class Frontier:
         slack = _RETURN_RTOL * max(1.0, float(np.max(np.abs(m))))
         if m.size == 1:
             if abs(target - m[0]) <= slack:
-                return self.corner_weights[0].copy()
+                return np.array(self.first_weights)
             raise ValueError(f"the frontier is the single portfolio with expected return {m[0]:.6g}, "
                              f"not {target:.6g}")
         if target < m[0] - slack:
@@ -153,7 +220,8 @@ class Frontier:
             k = min(int(np.searchsorted(m, target, side="right")) - 1, m.size - 2)
             k = max(k, 0)
         share = (target - m[k]) / (m[k + 1] - m[k])
-        out: FloatArray = self.corner_weights[k] + share * (self.corner_weights[k + 1] - self.corner_weights[k])
+        low, high = self.corner(k), self.corner(k + 1)
+        out: FloatArray = low + share * (high - low)
         return out
 
     def top_return(self, inputs: MixInputs) -> float:
@@ -175,13 +243,7 @@ class Frontier:
 
 
 def _single(w: FloatArray, mu: FloatArray) -> Frontier:
-    return Frontier(corner_returns=_frozen(np.array([float(mu @ w)])), corner_weights=_frozen(w[None, :]))
-
-
-def _frozen(a: FloatArray) -> FloatArray:
-    out = np.array(a, dtype=np.float64, copy=True)
-    out.setflags(write=False)
-    return out
+    return Frontier.from_corners(np.array([float(mu @ w)]), w[None, :])
 
 
 def _two_fund(inputs: MixInputs) -> Frontier:
@@ -203,7 +265,7 @@ def _two_fund(inputs: MixInputs) -> Frontier:
     if not float(mu @ second) > m_mv:
         second = w_mv + (max(float(np.max(mu) - np.min(mu)), 1.0) / slope) * direction
     weights = np.vstack([w_mv, second])
-    return Frontier(corner_returns=_frozen(weights @ mu), corner_weights=_frozen(weights), unbounded_above=True)
+    return Frontier.from_corners(weights @ mu, weights, unbounded_above=True)
 
 
 class _FreeSet:
@@ -317,7 +379,7 @@ class _DenseFreeSet(_FreeSet):
             self.refresh()
             return
         # Bordering: [[P + z z'/d, -z/d], [-z'/d, 1/d]].
-        block += np.outer(z, z / d)
+        block += z[:, None] * (z / d)
         self.p[f, :f] = self.p[:f, f] = -z / d
         self.p[f, f] = 1.0 / d
 
@@ -328,7 +390,7 @@ class _DenseFreeSet(_FreeSet):
             self.refresh()
             return
         col = self.p[:last, last]
-        self.p[:last, :last] -= np.outer(col, col / pivot)
+        self.p[:last, :last] -= col[:, None] * (col / pivot)
 
     def solve(self, rhs: FloatArray) -> FloatArray:
         out: FloatArray = rhs @ self.p[:self.f, :self.f]
@@ -372,7 +434,7 @@ class _FactorFreeSet(_FreeSet):
         denom = d2 + sign * float(g @ cg)
         if not denom > 1e-12 * d2:
             return False
-        self.c_inv -= np.outer(cg, cg * (sign / denom))
+        self.c_inv -= cg[:, None] * (cg * (sign / denom))
         return True
 
     def add(self, j: int) -> None:
@@ -411,36 +473,83 @@ def _free_set(risk: Risk, free: npt.NDArray[np.bool_]) -> _FreeSet:
 
 
 class _Corners:
-    """Corner portfolios written row by row into one growing buffer (no list to stack).
+    """Corner portfolios as they are found, recorded as changes (see Frontier).
 
-    Bounded assets sit exactly at their bound values ``c``; only the free weights can spill
-    over a bound by rounding. They are clipped here, and a spill beyond rounding is a bug.
+    A corner changes only the weights that were free before it: those are recorded (never an
+    n-vector per corner: writing thousands of fresh rows costs more in page faults than the
+    whole search). Only the free weights can spill over a bound by rounding; they are clipped
+    here, and a spill beyond rounding is a bug.
     """
 
-    def __init__(self, first: FloatArray, lo: FloatArray, hi: FloatArray) -> None:
-        self.lo, self.hi = lo, hi
-        self.rows: FloatArray = np.empty((2 * first.shape[0] + 16, first.shape[0]))
-        self.rows[0] = first
-        self.count = 1
+    def __init__(self, first: FloatArray, mu: FloatArray) -> None:
+        self.first = np.array(first)
+        self.current = np.array(first)
+        self.mu = mu
+        self.returns: list[float] = [float(mu @ first)]
+        self.assets: list[IndexArray] = []
+        self.values: list[FloatArray] = []
 
-    def append(self, c: FloatArray, idx: IndexArray, free_weights: FloatArray) -> FloatArray:
-        if self.count == self.rows.shape[0]:
-            grown = np.empty((2 * self.count, self.rows.shape[1]))
-            grown[:self.count] = self.rows
-            self.rows = grown
-        lo, hi = self.lo.take(idx), self.hi.take(idx)
-        spill = max(float(np.max(lo - free_weights)), float(np.max(free_weights - hi)))
+    def append(self, idx: IndexArray, free_weights: FloatArray, lo_f: FloatArray, hi_f: FloatArray,
+               at: int = -1, bound: float = 0.0) -> None:
+        """A corner with the free weights (bounds ``lo_f``, ``hi_f``) at ``idx``; position ``at``
+        of them (the asset that reached a bound) is set exactly to ``bound``."""
+        clipped = np.minimum(np.maximum(free_weights, lo_f), hi_f)
+        spill = float(np.abs(clipped - free_weights).max())
         if spill > 1e-9:
             raise RuntimeError(f"critical line left the bounds by {spill:.3g}")
-        row: FloatArray = self.rows[self.count]
-        row[:] = c
-        row[idx] = np.clip(free_weights, lo, hi)
-        self.count += 1
-        return row
+        if at >= 0:
+            clipped[at] = bound
+        assets = idx.copy()
+        self.current[assets] = clipped
+        self.assets.append(assets)
+        self.values.append(clipped)
+        self.returns.append(float(self.mu @ self.current))
 
-    def done(self) -> FloatArray:
-        out: FloatArray = self.rows[:self.count]
-        return out
+    def frontier(self, unbounded: bool) -> Frontier:
+        """The corners with strictly increasing returns (a corner that does not raise the
+        return is the previous one up to rounding: its changes are carried into the next)."""
+        returns = self.returns
+        keep = [0]
+        counts: list[int] = []
+        assets: list[IndexArray] = []
+        values: list[FloatArray] = []
+        pending_a: list[IndexArray] = []
+        pending_v: list[FloatArray] = []
+        last = len(returns) - 1
+        for k in range(1, len(returns)):
+            pending_a.append(self.assets[k - 1])
+            pending_v.append(self.values[k - 1])
+            rises = returns[k] > returns[keep[-1]] + _RETURN_RTOL * max(1.0, abs(returns[k]))
+            if not rises and not (k == last and unbounded and len(keep) > 1):
+                continue
+            if not rises:
+                # The ray's far corner replaces the last kept one: merge their changes.
+                keep.pop()
+                if counts:
+                    counts.pop()
+                    pending_a.insert(0, assets.pop())
+                    pending_v.insert(0, values.pop())
+            a, v = _merged(pending_a, pending_v)
+            keep.append(k)
+            counts.append(a.shape[0])
+            assets.append(a)
+            values.append(v)
+            pending_a, pending_v = [], []
+        empty_a, empty_v = np.zeros(0, dtype=np.intp), np.zeros(0)
+        return Frontier(corner_returns=np.array([returns[k] for k in keep]), first_weights=self.first,
+                        change_counts=np.array(counts, dtype=np.intp),
+                        change_assets=np.concatenate(assets) if assets else empty_a,
+                        change_weights=np.concatenate(values) if values else empty_v,
+                        unbounded_above=unbounded and len(keep) > 1)
+
+
+def _merged(assets: list[IndexArray], values: list[FloatArray]) -> tuple[IndexArray, FloatArray]:
+    """Changes applied one list after another, as one list (the last value of an asset wins)."""
+    if len(assets) == 1:
+        return assets[0], values[0]
+    a, v = np.concatenate(assets)[::-1], np.concatenate(values)[::-1]
+    _, first = np.unique(a, return_index=True)
+    return a[first], v[first]
 
 
 def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Frontier:
@@ -477,7 +586,7 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
     release = np.empty(n, dtype=bool)
     candidates = np.empty(n)
 
-    corners = _Corners(start.weights, lo, hi)
+    corners = _Corners(start.weights, mu)
     lam = 0.0
     last_moved = -1
     unbounded = False
@@ -554,7 +663,8 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
             candidates.fill(math.inf)
             np.divide(g0, minus_g1, out=candidates, where=release)
             # Free assets: where their weight reaches a bound (an infinite bound never does).
-            hit = (np.where(b_f > 0.0, hi.take(idx), lo.take(idx)) - a_f) / b_f
+            lo_f, hi_f = lo.take(idx), hi.take(idx)
+            hit = (np.where(b_f > 0.0, hi_f, lo_f) - a_f) / b_f
             hit[np.abs(b_f) <= b_tol] = math.inf
             # A free asset whose hit lies behind lam sits on its bound already and moves out
             # (a tie of two events, split by rounding): it is bound now, not skipped.
@@ -571,23 +681,24 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
                 if f > 1 and bool((np.abs(b_f) > b_tol).any()):
                     # No bound ever stops the last segment: the frontier has no top.
                     lam_far = lam + max(1.0, lam)
-                    corners.append(c, idx, a_f + lam_far * b_f)
+                    corners.append(idx, a_f + lam_far * b_f, lo_f, hi_f)
                     unbounded = True
                 break
             lam_next = max(lam_next, lam)
-            w = corners.append(c, idx, a_f + lam_next * b_f)
             if free_set.free[j]:
-                if b_f[free_set.pos[j]] > 0.0:
+                at = int(free_set.pos[j])
+                if b_f[at] > 0.0:
                     bound, state[j], side[j] = hi[j], UPPER, -1.0
                 else:
                     bound, state[j], side[j] = lo[j], LOWER, 1.0
-                w[j] = bound
+                corners.append(idx, a_f + lam_next * b_f, lo_f, hi_f, at, bound)
                 c[j] = bound
                 c_sum += bound
                 if bound != 0.0:
                     s_c += bound * risk.row(j)
                 free_set.remove(j)
             else:
+                corners.append(idx, a_f + lam_next * b_f, lo_f, hi_f)
                 if c[j] != 0.0:
                     s_c -= c[j] * risk.row(j)
                     c_sum -= c[j]
@@ -601,21 +712,7 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
         else:
             raise RuntimeError(f"critical line did not finish in {12 * n + 100} steps")
 
-    weights = corners.done()
-    returns = weights @ mu
-    keep = [0]
-    for k in range(1, returns.size):
-        if returns[k] > returns[keep[-1]] + _RETURN_RTOL * max(1.0, abs(float(returns[k]))):
-            keep.append(k)
-        elif k == returns.size - 1 and unbounded:
-            keep[-1] = k
-    if len(keep) < returns.size:
-        weights = weights[keep]
-        returns = returns[keep]
-    # The corner rows are this function's own buffer: frozen in place, not copied.
-    weights.setflags(write=False)
-    returns.setflags(write=False)
-    return Frontier(corner_returns=returns, corner_weights=weights, unbounded_above=unbounded and len(keep) > 1)
+    return corners.frontier(unbounded)
 
 
 def efficient_frontier(inputs: MixInputs) -> Frontier:

@@ -3,8 +3,9 @@ JSON-able document form (rebuilt without solving anything).
 
 Document layout (``format`` = ``DOCUMENT_FORMAT``): floats, strings, lists and the integer
 counts and asset indices of the frontier's corner changes (``Frontier.to_document``). The
-inputs hold either ``covariance`` (n x n) or ``factor_model`` (loadings, factor covariance,
-specific volatilities: never expanded to n x n).
+inputs hold either ``covariance_f64le`` (the n x n matrix as base64 of little-endian float64
+bytes; documents with a ``covariance`` list of rows are read too) or ``factor_model``
+(loadings, factor covariance, specific volatilities: never expanded to n x n).
 Infinite bounds are written as the strings ``"-inf"`` / ``"inf"``; the frontier's
 ``shape`` is ``"bounded"`` or ``"unbounded_above"``. Floats are written as Python floats,
 whose JSON text round-trips bit for bit.
@@ -12,6 +13,7 @@ whose JSON text round-trips bit for bit.
 
 from __future__ import annotations
 
+import base64
 import math
 from dataclasses import dataclass, replace
 from typing import Any
@@ -54,7 +56,7 @@ class SolvedMix:
         model = inp.factor_model
         # A factor model is stored as given (n k + k^2 + n numbers), never as the n x n matrix.
         risk: dict[str, Any] = (
-            {"covariance": [_floats(row) for row in inp.covariance]} if model is None else
+            {"covariance_f64le": _packed(inp.covariance)} if model is None else
             {"factor_model": {"loadings": [_floats(row) for row in model.loadings],
                               "factor_covariance": [_floats(row) for row in model.factor_covariance],
                               "specific_volatility": _floats(model.specific_volatility)}})
@@ -99,7 +101,8 @@ class SolvedMix:
                 specific_volatility=_array(model["specific_volatility"], (n,), "inputs.factor_model.specific_volatility"),
             ))
         else:
-            risk = DenseRisk(_array(raw["covariance"], (n, n), "inputs.covariance"))
+            dense = _unpacked(raw["covariance_f64le"], n) if "covariance_f64le" in raw else raw["covariance"]
+            risk = DenseRisk(_array(dense, (n, n), "inputs.covariance"))
         inputs = MixInputs(
             codes=codes,
             expected_returns=_array(raw["expected_returns"], (n,), "inputs.expected_returns"),
@@ -118,6 +121,19 @@ class SolvedMix:
         return cls(inputs=inputs, tangency=_portfolio_in(doc["tangency"], n, "tangency"),
                    min_variance=_portfolio_in(doc["min_variance"], n, "min_variance"),
                    frontier=frontier, cross_checks=checks, kkt_residual=float(doc["kkt_residual"]))
+
+
+def _packed(a: FloatArray) -> str:
+    """An array as base64 of its little-endian float64 bytes: exact, and ~20x quicker to write
+    and read than a million JSON numbers (the published inputs keep the numbers as given)."""
+    return base64.b64encode(np.ascontiguousarray(a, dtype="<f8").tobytes()).decode("ascii")
+
+
+def _unpacked(text: str, n: int) -> FloatArray:
+    flat = np.frombuffer(base64.b64decode(text), dtype="<f8")
+    if flat.size != n * n:
+        raise ValueError(f"inputs.covariance_f64le holds {flat.size} numbers, expected {n * n}")
+    return flat.astype(np.float64).reshape(n, n)
 
 
 def _floats(a: FloatArray) -> list[float]:

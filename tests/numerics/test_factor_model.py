@@ -16,8 +16,21 @@ import numpy.typing as npt
 import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
-from service.numerics import InputError, MixInputs, SolvedMix, build_inputs, efficient_frontier, min_variance, solve_mix, tangency
-from service.numerics.frontier import Frontier, best_sharpe_on_frontier, corner_kkt_residuals
+from service.numerics import (
+    InputError,
+    MixInputs,
+    SolvedMix,
+    build_inputs,
+    efficient_frontier,
+    min_variance,
+    solve_mix,
+    tangency,
+)
+from service.numerics.frontier import (
+    Frontier,
+    best_sharpe_on_frontier,
+    corner_kkt_residuals,
+)
 from service.numerics.risk import FactorRisk
 
 FloatArray = npt.NDArray[np.float64]
@@ -163,7 +176,7 @@ def test_the_kkt_check_sees_a_wrong_corner() -> None:
     assert free.size >= 2
     bent[k, free[0]] += 1e-4
     bent[k, free[1]] -= 1e-4
-    wrong = Frontier(corner_returns=frontier.corner_returns, corner_weights=bent)
+    wrong = Frontier.from_corners(frontier.corner_returns, bent)
     assert corner_kkt_residuals(wrong, factor)[k] > 1e-6
 
 
@@ -213,7 +226,7 @@ def test_solved_factor_mix_document_keeps_the_factor_model() -> None:
 
 
 def _model(n: int = 6, k: int = 2, **changes: Any) -> dict[str, Any]:
-    mu, b, f, d = factor_parts(n, k, 5)
+    _, b, f, d = factor_parts(n, k, 5)
     body: dict[str, Any] = {"loadings": b.tolist(), "factor_covariance": f.tolist(), "specific_volatility": d.tolist()}
     body.update(changes)
     return body
