@@ -9,6 +9,7 @@ from .line import AllocationLine
 from .mixes import (
     MixView,
     canonical_inputs,
+    canonical_text,
     content_hash,
     frontier_document,
     is_finite_document,
@@ -50,6 +51,7 @@ __all__ = [
     "canonical_inputs",
     "check_rates",
     "choose_risky_fraction",
+    "canonical_text",
     "content_hash",
     "disclosures_for",
     "format_units",

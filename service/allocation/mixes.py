@@ -72,9 +72,16 @@ def canonical_inputs(
     return canonical
 
 
-def content_hash(canonical: Mapping[str, Any]) -> str:
+def canonical_text(canonical: Mapping[str, Any]) -> bytes:
+    """The one text of a canonical form: hashed, and stored as it is (a 1,000-asset covariance
+    is 20 MB of it, so it is written once)."""
     # orjson writes floats in shortest round-trip form and sorted keys make the text unique.
-    return hashlib.sha256(orjson.dumps(canonical, option=orjson.OPT_SORT_KEYS)).hexdigest()
+    return orjson.dumps(canonical, option=orjson.OPT_SORT_KEYS)
+
+
+def content_hash(canonical: Mapping[str, Any] | bytes) -> str:
+    text = canonical if isinstance(canonical, bytes) else canonical_text(canonical)
+    return hashlib.sha256(text).hexdigest()
 
 
 def inputs_from_canonical(canonical: Mapping[str, Any], *, max_condition_number: float) -> MixInputs:

@@ -7,8 +7,11 @@ replica may keep them for its lifetime; the active version can change, so it is 
 from __future__ import annotations
 
 import logging
+import multiprocessing
+import os
 import threading
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 from typing import Any
 
@@ -19,6 +22,7 @@ from service.allocation import (
     MixView,
     Policy,
     canonical_inputs,
+    canonical_text,
     check_rates,
     content_hash,
     is_finite_document,
@@ -60,6 +64,10 @@ class PlanView:
 
 log = logging.getLogger("mixline.mixes")
 
+#: Frontiers of at least this many assets are solved in a child process (smaller ones take a
+#: few milliseconds: a process hop would cost more than the GIL they hold).
+FRONTIER_PROCESS_MIN_ASSETS = 500
+
 
 class MixCatalog:
     """Published mixes: solved once at publish, stored, and rebuilt from the stored document.
@@ -81,10 +89,28 @@ class MixCatalog:
         self._frontiers: dict[str, Frontier] = {}
         self._pending: dict[str, Future[Frontier]] = {}
         self._solver = ThreadPoolExecutor(max_workers=1, thread_name_prefix="mixline-frontier")
+        # Large frontiers are solved in one child process (forked on first use, so it starts
+        # with everything imported): the critical line is a loop of small numpy calls that
+        # would hold the GIL for hundreds of milliseconds and delay every other request.
+        self._process: ProcessPoolExecutor | None = None
         self._lock = threading.Lock()
 
     def close(self) -> None:
         self._solver.shutdown(wait=False, cancel_futures=False)
+        if self._process is not None:
+            self._process.shutdown(wait=False, cancel_futures=True)
+
+    def _efficient_frontier(self, inputs: MixInputs) -> Frontier:
+        if inputs.n < FRONTIER_PROCESS_MIN_ASSETS or not hasattr(os, "fork"):
+            return efficient_frontier(inputs)
+        try:
+            if self._process is None:
+                self._process = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"))
+            return self._process.submit(efficient_frontier, inputs).result()
+        except (BrokenProcessPool, OSError):
+            log.warning("the frontier process failed; solving in this process", exc_info=True)
+            self._process = None
+            return efficient_frontier(inputs)
 
     def frontier(self, plan_id: str, version: str) -> tuple[MixView, Frontier]:
         view = self.view(plan_id, version)
@@ -107,7 +133,7 @@ class MixCatalog:
             if stored is not None:
                 found = Frontier.from_document(stored, len(inputs.codes))
             else:
-                found = efficient_frontier(inputs)
+                found = self._efficient_frontier(inputs)
                 # Stored next on the same worker: whoever waits for this frontier is answered
                 # from memory without waiting for the database.
                 try:
@@ -179,7 +205,8 @@ class MixCatalog:
             long_only=request.long_only,
             factor_model=None if request.factor_model is None else request.factor_model.model_dump(),
         )
-        digest = content_hash(canonical)
+        text = canonical_text(canonical)
+        digest = content_hash(text)
         existing = self._load(plan.plan_id, request.version)
         if existing is not None:
             return self._same_or_conflict(request.version, digest, existing)
@@ -202,7 +229,7 @@ class MixCatalog:
                     plan_id=plan.plan_id,
                     version=request.version,
                     content_hash=digest,
-                    inputs=canonical,
+                    inputs=text.decode(),
                     solved={"published": doc, "numerics": solved.to_document()},
                 )
         except Conflict:

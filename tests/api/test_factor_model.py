@@ -138,3 +138,26 @@ async def test_bad_factor_models_get_422_naming_the_field(world: World, new_plan
     r = await world.client.post(f"/v1/plans/{new_plan_id}/mixes", json=_changed(edit), headers=keys["committee"])
     problem = assert_problem(r, 422, field)
     assert any(reason in e["reason"] for e in problem["errors"] if e["field"] == field), problem
+
+
+async def test_a_large_frontier_solved_in_the_child_process_is_the_same(world: World, new_plan_id: str,
+                                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    from service.api import state as state_module
+    from service.numerics import build_inputs, efficient_frontier
+
+    # Every frontier goes to the child process here (normally only those of >= 500 assets).
+    monkeypatch.setattr(state_module, "FRONTIER_PROCESS_MIN_ASSETS", 1)
+    keys = await world.plan(new_plan_id)
+    body = factor_body("fm-process")
+    await world.publish(new_plan_id, keys, body, activate=False)
+    r = await world.client.get(f"/v1/plans/{new_plan_id}/mixes/fm-process/frontier", params={"points": 7},
+                               headers=keys["portal"])
+    assert r.status_code == 200, r.text
+    # Reference: the same frontier solved in this process.
+    inputs = build_inputs([a["code"] for a in body["assets"]], [a["expected_return"] for a in body["assets"]],
+                          body["risk_free_rate"], factor_model=body["factor_model"],
+                          bounds={c: (lo, hi) for c, (lo, hi) in body["bounds"].items()})
+    here = efficient_frontier(inputs).sample(7, inputs)
+    got = r.json()["points"]
+    for ours, point in zip(here, got, strict=True):
+        assert_allclose([point["weights"][c] for c in inputs.codes], ours.weights, rtol=0, atol=1e-15)
