@@ -5,13 +5,16 @@ tangency portfolios (Merton 1972). With bounds it is traced by the critical line
 algorithm (Markowitz): minimise w'Sw/2 - lambda mu'w on {1'w = 1, lo <= w <= hi} for
 lambda rising from 0 (minimum variance). On a fixed active set the weights are affine in
 lambda; a corner is where a free weight reaches a bound or a bounded weight's multiplier
-reaches zero. The inverse of the free block of S is carried from corner to corner by
-bordering (add an asset) and Schur downdates (drop one), each one in-place rank-one BLAS
-update of an n x n matrix that is zero outside the free set (no gathers, no repacking).
-Each corner costs three BLAS products and a few dozen vector operations over all assets,
-with the event search vectorised. Rounding drift of the updated inverse is measured at
-every corner (the free entries of the reduced gradients must vanish); one step of
-iterative refinement removes small drift, a fresh Cholesky factorisation large drift.
+reaches zero. Only the free set F (typically a few dozen assets, even at N = 2,000) is
+factorised, in a compact order: for a dense covariance the inverse of S_FF is carried from
+corner to corner by bordering (add an asset) and Schur downdates (drop one), O(f^2) each,
+with the rows S[F] kept beside it; for a factor model G G' + D the k x k Woodbury
+capacitance inverse is carried by Sherman-Morrison updates, O(k^2) each. Each corner then
+costs one product with S[:, F] (O(n f) dense, O(n k) factor) and a dozen vector
+operations over all assets for the event search; never O(n^2). Rounding drift of the
+kept inverse is measured at every corner (the free entries of the reduced gradients must
+vanish); one step of iterative refinement removes small drift, a fresh factorisation
+large drift. ``corner_kkt_residuals`` checks every corner independently afterwards.
 
 Between consecutive corners the weights are affine in the target return, so
 ``Frontier.weights_at`` interpolates exactly, and the Sharpe ratio on each segment has a
@@ -738,13 +741,13 @@ def best_sharpe_on_frontier(frontier: Frontier, inputs: MixInputs) -> FloatArray
     quadratic has one interior stationary point, x* = (p0 B - p1 A) / (p1 B - p0 C) with
     q = A + 2 B x + C x^2; the maximum is there or at an end.
     """
-    s, mu, rf = inputs.covariance, inputs.expected_returns, inputs.risk_free_rate
+    risk, mu, rf = inputs.risk, inputs.expected_returns, inputs.risk_free_rate
     corners = frontier.corner_weights
     best_w = corners[0]
     best = -math.inf
 
     def sharpe(w: FloatArray) -> float:
-        var = float(w @ s @ w)
+        var = risk.variance(w)
         return (float(mu @ w) - rf) / math.sqrt(var) if var > 0 else -math.inf
 
     for w in corners:
@@ -757,7 +760,7 @@ def best_sharpe_on_frontier(frontier: Frontier, inputs: MixInputs) -> FloatArray
         last = k == corners.shape[0] - 2
         x_max = math.inf if (last and frontier.unbounded_above) else 1.0
         p0, p1 = float(mu @ a) - rf, float(mu @ d)
-        sa, sd = s @ a, s @ d
+        sa, sd = risk.times(a), risk.times(d)
         big_a, big_b, big_c = float(a @ sa), float(a @ sd), float(d @ sd)
         denom = p1 * big_b - p0 * big_c
         if denom == 0.0:
