@@ -804,13 +804,18 @@ def corner_kkt_residuals(frontier: Frontier, inputs: MixInputs) -> FloatArray:
         # can leave 1e-16 on an asset that the next face holds at its bound).
         tol = 1e-12 * max(1.0, float(np.max(np.abs(w))))
         free = (mid > lo + tol) & (mid < hi - tol)
-        side = np.where(free, 0.0, np.where(w <= lo + tol, 1.0, -1.0))
+        # A fixed weight (lo == hi) has a multiplier of either sign.
+        side = np.where(free | (lo == hi), 0.0, np.where(w <= lo + tol, 1.0, -1.0))
         if np.count_nonzero(free) >= 2:
             design = np.column_stack([mu[free], np.ones(int(np.count_nonzero(free)))])
             (lam, gamma), *_ = np.linalg.lstsq(design, sw[free], rcond=None)
         else:
             lam, gamma = 0.0, float(sw[free].sum()) if free.any() else 0.0
         g = sw - lam * mu - gamma
+        if count == 1 and not free.any():
+            # The only feasible portfolio: gamma is not pinned by any free asset and can always
+            # be chosen to give every bounded multiplier its sign.
+            g = np.zeros_like(g)
         worst = max(float(np.max(np.where(free, np.abs(g), -side * g))), 0.0, -float(lam))
         scale = max(float(np.max(np.abs(sw))), diag_max * float(np.abs(w).sum()), abs(float(gamma)),
                     abs(float(lam)) * mu_scale, np.finfo(float).tiny)
