@@ -674,11 +674,11 @@ def _critical_line(inputs: MixInputs, start: BoxSolution | None = None) -> Front
             candidates[idx] = np.maximum(hit, lam)
             if last_moved >= 0 and candidates[last_moved] <= lam + lam_tol:
                 candidates[last_moved] = math.inf
-            j = int(np.argmin(candidates))
+            j = int(candidates.argmin())
             if candidates[j] < lam - lam_tol:
                 # A release point behind lam is rounding, not an event (rare: filter, search again).
                 candidates[candidates < lam - lam_tol] = math.inf
-                j = int(np.argmin(candidates))
+                j = int(candidates.argmin())
             lam_next = float(candidates[j])
             if not math.isfinite(lam_next):
                 if f > 1 and bool((np.abs(b_f) > b_tol).any()):
