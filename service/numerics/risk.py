@@ -181,7 +181,8 @@ class FactorRisk(Risk):
         self.n = int(b.shape[0])
         values, vectors = np.linalg.eigh(0.5 * (f + f.T))
         keep = values > 0.0
-        root = vectors[:, keep] * np.sqrt(values[keep])
+        # F = 0 (no factor risk at all) keeps one zero column, so every shape stays k >= 1.
+        root = vectors[:, keep] * np.sqrt(values[keep]) if keep.any() else np.zeros((f.shape[0], 1))
         self.g: FloatArray = np.ascontiguousarray(b @ root)   # (n, r), B F B' = G G'
         self.d2: FloatArray = _frozen(d * d)
         self.diagonal = _frozen(np.einsum("ij,ij->i", self.g, self.g) + self.d2)

@@ -360,3 +360,18 @@ def test_factor_and_dense_forms_agree_everywhere(seed: int, n: int, k: int, boun
         assert_allclose(best_f, best_d, rtol=0, atol=1e-9)
     assert frontier_f.corner_weights.shape == frontier_d.corner_weights.shape
     assert_allclose(frontier_f.corner_weights, frontier_d.corner_weights, rtol=0, atol=1e-8)
+
+
+def test_a_factor_model_without_factor_risk_is_the_diagonal_covariance() -> None:
+    # F = 0 leaves S = diag(d^2): the unbounded tangency is then (mu - rf) / d^2 normalised
+    # (Merton's closed form with a diagonal matrix, worked out by hand).
+    rng = np.random.default_rng(1)
+    mu, d = 0.03 + rng.normal(0.0, 0.02, 20), rng.uniform(0.05, 0.2, 20)
+    codes = [f"A{i}" for i in range(20)]
+    inputs = build_inputs(codes, mu, RISK_FREE_RATE, long_only=False, factor_model={
+        "loadings": np.ones((20, 2)), "factor_covariance": np.zeros((2, 2)), "specific_volatility": d})
+    raw = (mu - RISK_FREE_RATE) / d ** 2
+    assert_allclose(tangency(inputs)[0].weights, raw / raw.sum(), rtol=0, atol=1e-12)
+    capped = build_inputs(codes, mu, RISK_FREE_RATE, bounds={c: (0.0, 0.2) for c in codes}, factor_model={
+        "loadings": np.ones((20, 2)), "factor_covariance": np.zeros((2, 2)), "specific_volatility": d})
+    assert corner_kkt_residuals(efficient_frontier(capped), capped).max() <= 1e-10
