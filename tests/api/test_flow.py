@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import asyncio
-
 import copy
 from decimal import Decimal
 from typing import Any
