@@ -227,6 +227,10 @@ class MixCatalog:
         doc = published_document(request.version, digest, solved)
         if not is_finite_document(doc):
             raise AllocationError("covariance", "the solution is not finite; the inputs are degenerate")
+        if solved.inputs.n >= FRONTIER_PROCESS_MIN_ASSETS and digest not in self._frontiers:
+            # A large frontier is solved in the child process: start it now, while this mix is
+            # stored and answered (a small one waits for the answer: in a thread it would slow it).
+            self._frontier_soon(digest, solved.inputs)
         try:
             with self._db.writing() as s:
                 insert_mix(
