@@ -188,6 +188,10 @@ class FactorRisk(Risk):
         self.diagonal = _frozen(np.einsum("ij,ij->i", self.g, self.g) + self.d2)
         self._dense: FloatArray | None = None
 
+    def __getstate__(self) -> dict[str, object]:
+        # The dense matrix is a cache (32 MB at n = 2,000): never shipped to another process.
+        return {**self.__dict__, "_dense": None}
+
     @property
     def rank(self) -> int:
         return int(self.g.shape[1])
