@@ -57,8 +57,8 @@ class SolvedMix:
         # A factor model is stored as given (n k + k^2 + n numbers), never as the n x n matrix.
         risk: dict[str, Any] = (
             {"covariance_f64le": _packed(inp.covariance)} if model is None else
-            {"factor_model": {"loadings": [_floats(row) for row in model.loadings],
-                              "factor_covariance": [_floats(row) for row in model.factor_covariance],
+            {"factor_model": {"loadings": model.loadings.tolist(),
+                              "factor_covariance": model.factor_covariance.tolist(),
                               "specific_volatility": _floats(model.specific_volatility)}})
         return {
             "format": DOCUMENT_FORMAT,
@@ -137,7 +137,8 @@ def _unpacked(text: str, n: int) -> FloatArray:
 
 
 def _floats(a: FloatArray) -> list[float]:
-    return [float(x) for x in a]
+    out: list[float] = np.asarray(a, dtype=np.float64).tolist()  # Python floats, exactly
+    return out
 
 
 def _bound_out(x: float) -> float | str:
