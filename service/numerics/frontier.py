@@ -24,6 +24,7 @@ closed-form maximum (``best_sharpe_on_frontier``), an independent check of the t
 from __future__ import annotations
 
 import math
+from abc import ABC, abstractmethod
 from dataclasses import dataclass
 from typing import Any
 
@@ -271,7 +272,7 @@ def _two_fund(inputs: MixInputs) -> Frontier:
     return Frontier.from_corners(weights @ mu, weights, unbounded_above=True)
 
 
-class _FreeSet:
+class _FreeSet(ABC):
     """The free assets in a compact order, and solves with their block S_FF.
 
     Position p of the order holds asset ``order[p]``; dropping an asset moves the last one
@@ -318,22 +319,28 @@ class _FreeSet:
         self.updates += 1
         return last
 
+    @abstractmethod
     def _swap(self, p: int, q: int) -> None:
         raise NotImplementedError
 
+    @abstractmethod
     def refresh(self) -> None:
         raise NotImplementedError
 
+    @abstractmethod
     def add(self, j: int) -> None:
         raise NotImplementedError
 
+    @abstractmethod
     def remove(self, j: int) -> None:
         raise NotImplementedError
 
+    @abstractmethod
     def solve(self, rhs: FloatArray) -> FloatArray:
         """S_FF^-1 applied to the rows of rhs (m, f), in the compact order."""
         raise NotImplementedError
 
+    @abstractmethod
     def spread(self, x: FloatArray, out: FloatArray) -> None:
         """out = S[:, F] x' for the rows of x (2, f): out is (2, n)."""
         raise NotImplementedError

@@ -11,6 +11,7 @@ something asks for it (the numerical cross-checks, tests).
 
 from __future__ import annotations
 
+from abc import ABC, abstractmethod
 from dataclasses import dataclass
 
 import numpy as np
@@ -43,40 +44,47 @@ class FactorModel:
         return int(self.loadings.shape[1])
 
 
-class FreeBlock:
+class FreeBlock(ABC):
     """Solves with one free block S_FF and spreads free vectors back over every asset."""
 
+    @abstractmethod
     def solve(self, rhs: FloatArray) -> FloatArray:
         """S_FF^-1 rhs for rhs of shape (f,) or (f, m)."""
         raise NotImplementedError
 
+    @abstractmethod
     def spread(self, x: FloatArray) -> FloatArray:
         """S[:, F] x for x of shape (f,): an (n,) vector."""
         raise NotImplementedError
 
 
-class Risk:
+class Risk(ABC):
     """What every solver needs of a covariance; see DenseRisk and FactorRisk."""
 
     n: int
     diagonal: FloatArray
     factor_model: FactorModel | None = None
 
+    @abstractmethod
     def dense(self) -> FloatArray:
         raise NotImplementedError
 
+    @abstractmethod
     def times(self, x: FloatArray) -> FloatArray:
         """S x for x of shape (n,), or x S for rows x of shape (m, n) (S is symmetric)."""
         raise NotImplementedError
 
+    @abstractmethod
     def columns_times(self, idx: IndexArray, x: FloatArray) -> FloatArray:
         """S[:, idx] x for x of shape (len(idx),)."""
         raise NotImplementedError
 
+    @abstractmethod
     def row(self, j: int) -> FloatArray:
         """S[j] (a fresh array)."""
         raise NotImplementedError
 
+    @abstractmethod
     def block(self, idx: IndexArray) -> FreeBlock | None:
         """A solver for S[idx][:, idx]; None when the block is numerically singular."""
         raise NotImplementedError
