@@ -25,6 +25,8 @@ from service.numerics import (
     solve_mix,
 )
 
+from .errors import AllocationError
+
 # Version of the canonical form below; part of the hash so a future change cannot collide.
 CANONICAL_FORM = "mixline.mix.v1"
 
@@ -100,6 +102,19 @@ def inputs_from_canonical(canonical: Mapping[str, Any], *, max_condition_number:
         long_only=canonical["long_only"],
         max_condition_number=max_condition_number,
     )
+
+
+def cross_checks_wanted(requested: bool | None, assets: int, limit: int) -> bool:
+    """Whether to run the numerical cross-checks: as asked, or, when the request does not say,
+    for mixes of at most ``limit`` assets. Asked for above the limit they would hold the
+    publication for minutes (SLSQP on hundreds of weights): refused, naming the field."""
+    if requested is None:
+        return assets <= limit
+    if requested and assets > limit:
+        raise AllocationError("cross_check", f"the numerical cross-checks run for mixes of at most {limit} assets "
+                                             f"(above that they take minutes); this mix has {assets}: leave "
+                                             "cross_check out or set it to false")
+    return requested
 
 
 def solve(canonical: Mapping[str, Any], *, cross_check: bool, max_condition_number: float) -> SolvedMix:

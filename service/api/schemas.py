@@ -139,7 +139,9 @@ class MixIn(Strict):
     risk_free_rate: Rate
     bounds: dict[str, Annotated[list[float], Field(min_length=2, max_length=2)]] | None = None
     long_only: bool = True
-    cross_check: bool = True
+    cross_check: Annotated[bool | None, Field(description=(
+        "run the three numerical cross-checks; left out: run them for mixes of at most "
+        "MIXLINE_MAX_CROSS_CHECK_ASSETS assets (250), whose checks take seconds, not minutes"))] = None
 
     @model_validator(mode="after")
     def _one_matrix(self) -> MixIn:

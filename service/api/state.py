@@ -25,6 +25,7 @@ from service.allocation import (
     canonical_text,
     check_rates,
     content_hash,
+    cross_checks_wanted,
     is_finite_document,
     published_document,
     solve,
@@ -216,12 +217,13 @@ class MixCatalog:
         if existing is not None:
             return self._same_or_conflict(request.version, digest, existing)
         check_rates(plan.policy, request.risk_free_rate)
+        checks = cross_checks_wanted(request.cross_check, len(request.assets), self._settings.max_cross_check_assets)
         # The same content solved before (another plan, or an earlier version) is not solved again.
         solved = self._solved_by_hash.get(digest)
-        if solved is None or (request.cross_check and not solved.cross_checks):
+        if solved is None or (checks and not solved.cross_checks):
             solved = solve(
                 canonical,
-                cross_check=request.cross_check,
+                cross_check=checks,
                 max_condition_number=self._settings.max_condition_number,
             )
         doc = published_document(request.version, digest, solved)

@@ -10,12 +10,18 @@ from __future__ import annotations
 import copy
 from typing import Any
 
+import httpx
 import numpy as np
 import orjson
 import pytest
 from numpy.testing import assert_allclose
 
-from .conftest import World
+from service.api import create_app
+from service.demo import DEMO_MIX
+from service.settings import Settings
+from service.store import Database
+
+from .conftest import OPERATOR_KEY, World
 from .test_flow import assert_problem
 
 pytestmark = pytest.mark.anyio
@@ -161,3 +167,26 @@ async def test_a_large_frontier_solved_in_the_child_process_is_the_same(world: W
     got = r.json()["points"]
     for ours, point in zip(here, got, strict=True):
         assert_allclose([point["weights"][c] for c in inputs.codes], ours.weights, rtol=0, atol=1e-15)
+
+
+async def test_cross_checks_run_by_default_only_for_mixes_they_finish_quickly(database: Database,
+                                                                             new_plan_id: str) -> None:
+    # A limit of 10 assets: the 30-security mix is above it, the 6-class demo mix below.
+    settings = Settings(database_url=database.url, bootstrap_operator_key=OPERATOR_KEY, max_cross_check_assets=10)
+    app = create_app(settings, database, migrate=False)
+    async with app.router.lifespan_context(app), httpx.AsyncClient(
+            transport=httpx.ASGITransport(app=app), base_url="http://t") as client:
+        world = World(client, database, settings)
+        keys = await world.plan(new_plan_id)
+        body = {k: v for k, v in factor_body("fm-default").items() if k != "cross_check"}
+        r = await client.post(f"/v1/plans/{new_plan_id}/mixes", json=body, headers=keys["committee"])
+        assert r.status_code == 201, r.text
+        assert r.json()["cross_checks"] == []
+        asked = factor_body("fm-asked") | {"cross_check": True}
+        r = await client.post(f"/v1/plans/{new_plan_id}/mixes", json=asked, headers=keys["committee"])
+        problem = assert_problem(r, 422, "cross_check")
+        assert "at most 10 assets" in problem["detail"]
+        small = {k: v for k, v in copy.deepcopy(DEMO_MIX).items() if k != "cross_check"} | {"version": "small"}
+        r = await client.post(f"/v1/plans/{new_plan_id}/mixes", json=small, headers=keys["committee"])
+        assert r.status_code == 201, r.text
+        assert {c["method"] for c in r.json()["cross_checks"]} == {"direct_search", "risk_grid", "return_grid"}
