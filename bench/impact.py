@@ -23,10 +23,10 @@ import orjson
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from allocations import PLAN, Server, call, members, seed  # noqa: E402
+from allocations import PLAN, Server, call, members, seed
 
-from service.demo import DEMO_MIX  # noqa: E402
-from service.store import Database, latest_allocations  # noqa: E402
+from service.demo import DEMO_MIX
+from service.store import Database, latest_allocations
 
 
 def main() -> None:

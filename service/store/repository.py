@@ -136,9 +136,10 @@ def insert_mix(
     plan_id: str,
     version: str,
     content_hash: str,
-    inputs: dict[str, Any],
+    inputs: dict[str, Any] | str,
     solved: dict[str, Any],
 ) -> None:
+    """``inputs`` may come as its JSON text already (sorted keys, as ``json_text`` writes it)."""
     _insert_new(
         s,
         Mix,
@@ -147,7 +148,7 @@ def insert_mix(
             plan_id=plan_id,
             version=version,
             content_hash=content_hash,
-            inputs=json_text(inputs),
+            inputs=inputs if isinstance(inputs, str) else json_text(inputs),
             solved=json_text(solved),
             created_at=utc_now(),
         ),
