@@ -189,6 +189,9 @@ class ChainWriter:
         self._connection: Any = None  # a pooled DBAPI connection, owned by the writer thread
         self._checkpointer = WalCheckpointer(engine) if self._dialect == "sqlite" else None
         self._last_purge = 0.0
+        # While a stream is written, WAL checkpoints wait: copying pages back to the database
+        # file then would compete with the stream's own writes (one checkpoint follows it).
+        self._streaming = False
         # Called on the writer thread after each group as (jobs, rows, seconds); the api layer
         # turns it into metrics, so this module needs no metrics library. Once per group, not per row.
         self.group_written: Callable[[int, int, float], None] | None = None
@@ -375,7 +378,7 @@ class ChainWriter:
     # Rows of other requests are written between a stream's transactions, each of at most this
     # many rows (a few milliseconds), so that they wait for at most one of them. PostgreSQL pays
     # an fsync per commit and lets other plans' requests commit meanwhile: larger pieces there.
-    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 256, "postgresql": 1024}
+    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 1024, "postgresql": 2048}
     STREAM_POLL_SECONDS = 0.002
 
     def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
@@ -385,6 +388,7 @@ class ChainWriter:
         assert isinstance(stream, LogStream)
         deferred: list[Any] = []
         stopping = False
+        self._streaming = True
         try:
             self._batch_state(stream, STAGED, None, opening=True)
             while True:
@@ -415,6 +419,10 @@ class ChainWriter:
             job.future.set_exception(error)
         else:
             job.future.set_result(None)
+        finally:
+            self._streaming = False
+            if self._checkpointer is not None:
+                self._checkpointer.committed(stream.size)
         for waiting in deferred:
             self._queue.put(waiting)  # later streams, and a stop, keep their turn
         return stopping and not deferred
@@ -584,7 +592,7 @@ class ChainWriter:
         if completions:
             dbapi.executemany(COMPLETE_SQL.format(p="?"), completions)
         dbapi.commit()
-        if self._checkpointer is not None:
+        if self._checkpointer is not None and not self._streaming:
             self._checkpointer.committed(sum(job.size for job in jobs))
 
     def _write_postgresql(self, dbapi: Any, jobs: list[_Job]) -> None:
