@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import gc
 import json
+import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from pathlib import Path
@@ -11,6 +12,7 @@ from typing import Any
 
 from fastapi import FastAPI
 from pydantic.json_schema import models_json_schema
+from sqlalchemy.exc import SQLAlchemyError
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.settings import Settings
@@ -20,10 +22,12 @@ from . import allocations, audit, batch, errors, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
 from .errors import PROBLEM_MEDIA_TYPE, problem_response
 from .fastpath import AllocationFastPath
+from .gateway import Gateway, csv_routes
 from .metrics import Metrics, MetricsMiddleware
 from .schemas import AllocationIn, BatchIn, MixIn, Problem
 from .state import AppState
 
+log = logging.getLogger("mixline.api")
 EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
 
 
@@ -49,10 +53,15 @@ class BodyLimit:
 
 
 def bootstrap(state: AppState) -> None:
+    """Record the bootstrap operator key in the database. The key works without this row (auth.py
+    knows it from the settings), so a database that is down at start-up delays only the row."""
     key = state.settings.bootstrap_operator_key
     if key:
-        with state.db.writing() as s:
-            upsert_key(s, key_id=BOOTSTRAP_KEY_ID, plan_id=None, role="operator", secret_hash=secret_hash(key))
+        try:
+            with state.db.writing() as s:
+                upsert_key(s, key_id=BOOTSTRAP_KEY_ID, plan_id=None, role="operator", secret_hash=secret_hash(key))
+        except SQLAlchemyError as error:
+            log.warning("could not record the bootstrap operator key: %s", str(error).splitlines()[0][:200])
 
 
 def create_app(settings: Settings | None = None, database: Database | None = None, *, migrate: bool = True) -> FastAPI:
@@ -65,6 +74,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         if migrate:
             db.upgrade()
+        state.access_log.start()
         db.start()
         bootstrap(state)
         # Start-up objects (modules, routes, schemas) never die: keeping them out of the
@@ -77,6 +87,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
             state.mixes.close()
             if database is None:
                 db.close()
+            state.access_log.close()
 
     app = FastAPI(
         title="mixline",
@@ -97,6 +108,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.add_middleware(AllocationFastPath, state=state, route=documented, body_limit=settings.max_body_bytes)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
+    app.add_middleware(Gateway, log=state.access_log, csv_paths=csv_routes(app.routes))
     install_openapi(app)
     return app
 

@@ -93,6 +93,9 @@ class PlanOut(BaseModel):
 
 class KeyIn(Strict):
     role: Literal["committee", "portal"]
+    expires_in_days: Annotated[int, Field(ge=1, le=3660)] | None = Field(
+        default=None, description="the key stops working this many days after issue; unset: it never expires"
+    )
 
 
 class KeyOut(BaseModel):
@@ -100,6 +103,22 @@ class KeyOut(BaseModel):
     plan_id: str
     role: str
     secret: str
+    created_at: str
+    expires_at: str | None
+
+
+class KeyInfoOut(BaseModel):
+    key_id: str
+    plan_id: str
+    role: str
+    created_at: str
+    expires_at: str | None
+    revoked_at: str | None
+
+
+class KeyListOut(BaseModel):
+    plan_id: str
+    keys: list[KeyInfoOut]
 
 
 # ---- risky mixes ----------------------------------------------------------------------------

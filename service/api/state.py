@@ -1,7 +1,9 @@
 """What one process keeps between requests: settings, the database, and caches of immutable things.
 
-Plans (their name, currency and policy), keys and published mixes never change once written, so a
-replica may keep them for its lifetime; the active version can change, so it is always read live.
+Plans (their name, currency and policy) and published mixes never change once written, so a
+replica may keep them for its lifetime; the active version can change, so it is always read live;
+keys can be revoked or expire, so what a replica knows of one is re-read after a few seconds
+(auth.py).
 """
 
 from __future__ import annotations
@@ -40,9 +42,11 @@ from service.store import (
     insert_mix,
 )
 
+from .access_log import AccessLog
 from .auth import KeyRing
 from .errors import ConflictError, NotFound, PayloadTooLarge
 from .metrics import Metrics
+from .rate_limits import TokenBuckets
 from .schemas import MixIn
 
 
@@ -231,7 +235,13 @@ class AppState:
         self.settings = settings
         self.metrics = metrics
         self.db = database
-        self.keys = KeyRing()
+        self.keys = KeyRing(
+            cache_seconds=settings.key_cache_seconds,
+            requests=TokenBuckets(settings.rate_limit_per_second, settings.rate_limit_burst),
+            failures=TokenBuckets(settings.auth_failure_limit_per_second, settings.auth_failure_burst),
+            bootstrap_secret=settings.bootstrap_operator_key,
+        )
+        self.access_log = AccessLog(settings.access_log)
         self.mixes = MixCatalog(database, settings, metrics)
         self._plans: dict[str, PlanView] = {}
 

@@ -30,6 +30,8 @@ from service.store.repository import (
     insert_mix,
     insert_plan,
     list_allocations,
+    list_keys,
+    revoke_key,
     set_active_version,
     upsert_key,
 )
@@ -61,6 +63,8 @@ __all__ = [
     "insert_mix",
     "insert_plan",
     "list_allocations",
+    "list_keys",
+    "revoke_key",
     "secret_hash",
     "secret_matches",
     "set_active_version",

@@ -26,6 +26,16 @@ class KeyRecord:
     role: str
     secret_hash: str
     created_at: datetime
+    expires_at: datetime | None = None
+    revoked_at: datetime | None = None
+
+    def unusable_at(self, now: datetime) -> str | None:
+        """Why the key may not be used at ``now`` ("revoked", "expired"), or None."""
+        if self.revoked_at is not None and self.revoked_at <= now:
+            return "revoked"
+        if self.expires_at is not None and self.expires_at <= now:
+            return "expired"
+        return None
 
 
 @dataclass(frozen=True)
