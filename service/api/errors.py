@@ -136,6 +136,8 @@ def database_unreachable(exc: BaseException) -> bool:
     it), as opposed to a bad statement: those are the service's own failures (500)."""
     if isinstance(exc, database_errors.DBAPIError) and exc.connection_invalidated:
         return True
+    if type(exc).__name__ == "OperationalError" and type(exc).__module__.split(".")[0] in ("psycopg", "sqlite3"):
+        return True  # a driver's own error that reached us unwrapped
     return isinstance(
         exc,
         database_errors.OperationalError

@@ -392,7 +392,15 @@ class ChainWriter:
 
     def _checkout(self) -> Any:
         if self._connection is None:
-            self._connection = self._engine.raw_connection()
+            driver_error = self._engine.dialect.loaded_dbapi.Error
+            try:
+                self._connection = self._engine.raw_connection()
+            except driver_error as error:
+                # The pool hands out the driver's own error here; callers tell an unreachable
+                # database by SQLAlchemy's classes, as everywhere else.
+                raise DBAPIError.instance(
+                    None, None, error, driver_error, connection_invalidated=True
+                ) from error
             if self._dialect == "sqlite":
                 sqlite = self._connection.driver_connection
                 sqlite.execute(f"PRAGMA cache_size=-{_SQLITE_WRITER_CACHE_KIB}")
