@@ -38,6 +38,7 @@ from starlette.responses import Response
 
 from service.allocation import AllocationError
 from service.numerics import InputError
+from service.store import IdempotencyLeaseLost
 
 from .request_context import current_request
 
@@ -221,6 +222,16 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
         return problem_response(
             exc.status, exc.title, exc.detail, slug=exc.slug, errors=exc.errors, headers=exc.headers,
             instance=path,
+        )
+    if isinstance(exc, IdempotencyLeaseLost):
+        return response_for(
+            ConflictError(
+                "this request outlived its Idempotency-Key lease and another request with the key "
+                "was answered meanwhile; nothing of this one was logged. Retry with the same key for "
+                "that answer",
+                headers={"Retry-After": "1"},
+            ),
+            path, method,
         )
     if isinstance(exc, AllocationError | InputError):
         return problem_response(

@@ -7,7 +7,7 @@ PostgreSQL are both supported through the same calls.
 from service.store.chain import GENESIS_HASH, verify_chain
 from service.store.database import Database
 from service.store.errors import Conflict
-from service.store.idempotency import IdempotencyRecord, KeyRelease, KeyReservation
+from service.store.idempotency import IdempotencyLeaseLost, IdempotencyRecord, KeyRelease, KeyReservation
 from service.store.key_secrets import secret_hash, secret_matches
 from service.store.records import (
     BadRow,
@@ -45,6 +45,7 @@ __all__ = [
     "Conflict",
     "Database",
     "IdempotencyCompletion",
+    "IdempotencyLeaseLost",
     "IdempotencyRecord",
     "KeyRelease",
     "KeyReservation",

@@ -58,6 +58,8 @@ class IdempotencyCompletion:
     idempotency_key: str
     status_code: int
     response: str
+    reserved_at: int  # the reservation this answer completes (unix seconds; see store.idempotency)
+    expires_at: int  # until when the answer is replayed (unix seconds)
 
 
 @dataclass(frozen=True)

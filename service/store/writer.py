@@ -33,11 +33,11 @@ from sqlalchemy.exc import DBAPIError
 
 from service.store.chain import GENESIS_HASH, SEPARATOR
 from service.store.idempotency import (
-    COMPLETE_SQL,
     IdempotencyRecord,
     KeyOperation,
     KeyRelease,
     KeyReservation,
+    complete,
     completion_parameters,
     purge,
 )
@@ -143,7 +143,7 @@ class _Chains:
             self.heads[plan_id] = (seq, prev_hash)
 
 
-def _completions(jobs: Iterable[_Job]) -> list[tuple[int, str, str, str, str]]:
+def _completions(jobs: Iterable[_Job]) -> list[tuple[Any, ...]]:
     """Idempotency answers to store with these rows (a stream's arrives after its last row)."""
     found = []
     for job in jobs:
@@ -451,9 +451,7 @@ class ChainWriter:
             "SET last_seq = excluded.last_seq, last_hash = excluded.last_hash",
             [(plan_id, seq, last) for plan_id, (seq, last) in chains.heads.items()],
         )
-        completions = _completions(jobs)
-        if completions:
-            dbapi.executemany(COMPLETE_SQL.format(p="?"), completions)
+        complete(dbapi.cursor(), _completions(jobs), "?")
         dbapi.commit()
         if self._checkpointer is not None:
             self._checkpointer.committed(sum(job.size for job in jobs))
@@ -480,13 +478,13 @@ class ChainWriter:
                     for row in chains.rows(jobs):
                         copy.write_row(row)
                 cursor.executemany(move_heads, _head_rows(chains))
-                completions = _completions(jobs)
-                if completions:
-                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
+                complete(cursor, _completions(jobs), "%s")
                 dbapi.commit()
                 return
             rows = list(chains.rows(jobs))
-            completions = _completions(jobs)
+            # Before the pipeline, which gives no row counts: an answer whose reservation was
+            # taken over must fail its transaction (one round trip per keyed request).
+            complete(cursor, _completions(jobs), "%s")
             # Insert, head update and COMMIT in one round trip (plus the lock's): this
             # path serves the small groups, where round trips are most of the time.
             with dbapi.pipeline():
@@ -496,8 +494,6 @@ class ChainWriter:
                     rows,
                 )
                 cursor.executemany(move_heads, _head_rows(chains))
-                if completions:
-                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
                 dbapi.commit()
 
     @staticmethod
