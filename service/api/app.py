@@ -104,6 +104,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     errors.install(app)
     for module in (plans, mixes, batch, allocations, audit, operations):
         app.include_router(module.router)
+    app.include_router(audit.keys_router)
     documented = next(r for r in allocations.router.routes if getattr(r, "name", "") == "create_allocation")
     app.add_middleware(AllocationFastPath, state=state, route=documented, body_limit=settings.max_body_bytes)
     app.add_middleware(MetricsMiddleware, metrics=metrics)

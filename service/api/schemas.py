@@ -351,6 +351,23 @@ class AuditOut(BaseModel):
     first_bad: BadRowOut | None
 
 
+class SignedHeadOut(BaseModel):
+    plan_id: str
+    seq: int
+    hash: str
+    signed_at: str
+    key_id: str
+    signature: str
+
+
+class SigningKeyOut(BaseModel):
+    algorithm: Literal["Ed25519"]
+    key_id: str
+    public_key: str
+    public_key_pem: str
+    ephemeral: bool
+
+
 class HealthOut(BaseModel):
     status: str
     checks: dict[str, str] | None = None

@@ -32,6 +32,7 @@ from service.settings import Settings
 from service.store import (
     Conflict,
     Database,
+    HeadSigner,
     KeyRecord,
     PlanRecord,
     get_frontier,
@@ -242,6 +243,16 @@ class AppState:
             bootstrap_secret=settings.bootstrap_operator_key,
         )
         self.access_log = AccessLog(settings.access_log)
+        if settings.signing_key_file:
+            self.signer = HeadSigner.from_file(settings.signing_key_file)
+        else:
+            # Settings refuse this in production: heads signed by a key that dies with the
+            # process (and differs per replica) cannot be checked later.
+            self.signer = HeadSigner.generated()
+            log.warning(
+                "MIXLINE_SIGNING_KEY_FILE unset: audit heads are signed with an ephemeral key "
+                "(id %s) that lasts only as long as this process (development only)", self.signer.key_id,
+            )
         self.mixes = MixCatalog(database, settings, metrics)
         self._plans: dict[str, PlanView] = {}
 

@@ -35,10 +35,22 @@ from service.store.repository import (
     set_active_version,
     upsert_key,
 )
+from service.store.signed_heads import (
+    HeadSigner,
+    SignedHead,
+    check_against_head,
+    current_head,
+    load_public_key,
+)
 from service.store.writer import ChainWriter
 
 __all__ = [
     "GENESIS_HASH",
+    "HeadSigner",
+    "SignedHead",
+    "check_against_head",
+    "current_head",
+    "load_public_key",
     "BadRow",
     "ChainReport",
     "ChainWriter",
