@@ -52,7 +52,14 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     from service.api.schemas import MixIn
     from service.api.state import AppState
     from service.demo import DEMO_ALLOCATION, DEMO_MIX, DEMO_PLAN
-    from service.store import Database, get_plan, insert_key, insert_plan, secret_hash, set_active_version
+    from service.store import (
+        Database,
+        get_plan,
+        insert_key,
+        insert_plan,
+        secret_hash,
+        set_active_version,
+    )
     from service.timestamps import rfc3339, utc_now
 
     if "database_url" not in settings.model_fields_set:
@@ -118,7 +125,14 @@ def _audit_verify(settings: Settings, plan_id: str | None, head_file: str | None
 
     from sqlalchemy import text
 
-    from service.store import Database, SignedHead, check_against_head, get_plan, load_public_key, verify_chain
+    from service.store import (
+        Database,
+        SignedHead,
+        check_against_head,
+        get_plan,
+        load_public_key,
+        verify_chain,
+    )
 
     head: SignedHead | None = None
     if head_file is not None:

@@ -17,7 +17,7 @@ def rfc3339(moment: datetime) -> str:
 
 def parse_rfc3339(text: str) -> datetime:
     """The inverse of rfc3339 (any offset accepted, returned in UTC)."""
-    moment = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    moment = datetime.fromisoformat(text)  # Python 3.11 reads a trailing Z
     if moment.tzinfo is None:
         raise ValueError(f"{text!r} has no time zone")
     return moment.astimezone(UTC)

@@ -49,7 +49,7 @@ def _logged_plan(url: str, plan_id: str, rows: int) -> None:
         with db.writing() as s:
             insert_plan(s, plan_id=plan_id, name="CLI plan", currency="USD", policy={})
         ids = [f"al_{plan_id}_{i}" for i in range(rows)]
-        db.writer.append(LogBatch(plan_id, "v1", "2026-12-01T00:00:00.000000Z", ids, ["m"] * rows, ['{"n":%d}' % i for i in range(rows)]))
+        db.writer.append(LogBatch(plan_id, "v1", "2026-12-01T00:00:00.000000Z", ids, ["m"] * rows, [f'{{"n":{i}}}' for i in range(rows)]))
     finally:
         db.close()
 

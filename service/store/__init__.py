@@ -7,7 +7,12 @@ PostgreSQL are both supported through the same calls.
 from service.store.chain import GENESIS_HASH, verify_chain
 from service.store.database import Database
 from service.store.errors import Conflict
-from service.store.idempotency import IdempotencyLeaseLost, IdempotencyRecord, KeyRelease, KeyReservation
+from service.store.idempotency import (
+    IdempotencyLeaseLost,
+    IdempotencyRecord,
+    KeyRelease,
+    KeyReservation,
+)
 from service.store.key_secrets import secret_hash, secret_matches
 from service.store.records import (
     BadRow,
@@ -46,26 +51,25 @@ from service.store.writer import ChainWriter
 
 __all__ = [
     "GENESIS_HASH",
-    "HeadSigner",
-    "SignedHead",
-    "check_against_head",
-    "current_head",
-    "load_public_key",
     "BadRow",
     "ChainReport",
     "ChainWriter",
     "Conflict",
     "Database",
+    "HeadSigner",
     "IdempotencyCompletion",
     "IdempotencyLeaseLost",
     "IdempotencyRecord",
+    "KeyRecord",
     "KeyRelease",
     "KeyReservation",
-    "KeyRecord",
     "LogBatch",
     "LogStream",
     "MixRecord",
     "PlanRecord",
+    "SignedHead",
+    "check_against_head",
+    "current_head",
     "get_allocation",
     "get_frontier",
     "get_key",
@@ -77,6 +81,7 @@ __all__ = [
     "insert_plan",
     "list_allocations",
     "list_keys",
+    "load_public_key",
     "revoke_key",
     "secret_hash",
     "secret_matches",

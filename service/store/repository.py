@@ -19,7 +19,15 @@ from sqlalchemy.orm import Session
 
 from service.store.errors import Conflict
 from service.store.records import KeyRecord, MixRecord, PlanRecord
-from service.store.schema import Allocation, ApiKey, Mix, Plan, StoredFrontier, json_text, utc_now
+from service.store.schema import (
+    Allocation,
+    ApiKey,
+    Mix,
+    Plan,
+    StoredFrontier,
+    json_text,
+    utc_now,
+)
 
 
 def _insert(session: Session, table: Any) -> Insert:
