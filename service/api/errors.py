@@ -36,7 +36,8 @@ from sqlalchemy import exc as database_errors
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
-from service.allocation import AllocationError
+from service.allocation import AllocationError, MemberErrors
+from service.allocation.requests import TooManyMembers
 from service.numerics import InputError
 from service.store import IdempotencyLeaseLost
 
@@ -51,7 +52,7 @@ DATABASE_RETRY_AFTER_SECONDS = 2
 # What the identifier patterns of schemas.py allow, in words: a message never shows a regex.
 # tests/api/test_errors.py checks that every pattern in the OpenAPI document is described here.
 PATTERN_WORDS = {
-    r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$":
+    r"^[A-Za-z0-9][A-Za-z0-9._\-]{0,63}$":
         "1 to 64 letters, digits, '.', '_' or '-', starting with a letter or digit",
     r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$":
         "1 to 32 letters, digits, '.', '_' or '-', starting with a letter or digit",
@@ -157,8 +158,11 @@ def problem_response(
     errors: Sequence[dict[str, str]] | None = None,
     headers: dict[str, str] | None = None,
     instance: str | None = None,
+    extra: dict[str, Any] | None = None,
 ) -> Response:
     body: dict[str, Any] = {"type": problem_type(slug), "title": title, "status": status, "detail": detail}
+    if extra:
+        body.update(extra)
     if instance:
         body["instance"] = instance
     info = current_request.get()
@@ -216,8 +220,7 @@ def validation_errors(exc: RequestValidationError) -> list[dict[str, str]]:
 
 
 def response_for(exc: BaseException, path: str, method: str = "") -> Response:
-    """The problem response for any exception: the one mapping both the routes and the
-    allocation fast path (fastpath.py) use."""
+    """The problem response for any exception (the one mapping every route uses)."""
     if isinstance(exc, ProblemError):
         return problem_response(
             exc.status, exc.title, exc.detail, slug=exc.slug, errors=exc.errors, headers=exc.headers,
@@ -232,6 +235,23 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
                 headers={"Retry-After": "1"},
             ),
             path, method,
+        )
+    if isinstance(exc, MemberErrors):
+        errors = [field_error(field, reason) for field, reason in exc.listed]
+        first = f"{errors[0]['field']}: {errors[0]['reason']}"
+        if exc.count == 1:
+            detail = first
+        else:
+            shown = f"; {exc.count - len(errors)} more not listed" if exc.count > len(errors) else ""
+            detail = f"{exc.count} problems in {exc.members} member(s){shown}; the first: {first}"
+        body_extra = {"error_count": exc.count}
+        return problem_response(
+            422, "Invalid request", detail, slug="validation", errors=errors, instance=path, extra=body_extra,
+        )
+    if isinstance(exc, TooManyMembers):
+        return problem_response(
+            413, "Payload too large", f"{exc.field}: {exc.reason}", slug="payload-too-large",
+            errors=[field_error(exc.field, exc.reason)], instance=path,
         )
     if isinstance(exc, AllocationError | InputError):
         return problem_response(
