@@ -47,7 +47,9 @@ def test_placeholder_or_weak_operator_keys_are_refused(secret: str) -> None:
 
 def test_the_deploy_example_secret_fails_the_production_check() -> None:
     text = DEPLOY_SECRET.read_text()
-    values = dict(re.findall(r'^\s+(MIXLINE_[A-Z_]+):\s*"([^"]*)"', text, flags=re.MULTILINE))
+    # stringData entries, quoted or not: `  MIXLINE_X: "value"`, `  MIXLINE_X: 'value'`, `  MIXLINE_X: value`.
+    found = re.findall(r"""^\s+(MIXLINE_[A-Z_]+):\s*(?:"([^"]*)"|'([^']*)'|(\S+))\s*$""", text, flags=re.MULTILINE)
+    values = {name: a or b or c for name, a, b, c in found}
     assert "MIXLINE_BOOTSTRAP_OPERATOR_KEY" in values, "the example secret no longer names the operator key"
     with pytest.raises(ValidationError, match="MIXLINE_BOOTSTRAP_OPERATOR_KEY"):
         production(bootstrap_operator_key=values["MIXLINE_BOOTSTRAP_OPERATOR_KEY"])
