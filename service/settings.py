@@ -55,9 +55,11 @@ class Settings(BaseSettings):
     max_assets: int = Field(default=2000, ge=1)
     # Largest number of frontier points one request may ask for.
     max_frontier_points: int = Field(default=500, ge=2)
-    # Requests per second per API key (token bucket, per process), and the bucket's size.
-    rate_limit_per_second: float = Field(default=1000.0, gt=0)
-    rate_limit_burst: int = Field(default=2000, ge=1)
+    # Requests per second per API key (token bucket, per process), and the bucket's size. The
+    # default guards against a runaway client, not a quota: one portal key may carry a plan's
+    # whole enrolment traffic (thousands a second); set it to the peak a key should reach.
+    rate_limit_per_second: float = Field(default=5000.0, gt=0)
+    rate_limit_burst: int = Field(default=10000, ge=1)
     # Failed authentications per second per client address (per process), and the bucket's size.
     auth_failure_limit_per_second: float = Field(default=5.0, gt=0)
     auth_failure_burst: int = Field(default=20, ge=1)
