@@ -31,6 +31,7 @@ KeyLoader = Callable[[str], KeyRecord | None]
 BOOTSTRAP_KEY_ID = "operator-bootstrap"
 _PREFIX = "mxl_"
 _KEY_ID_LENGTH = 16
+_MAX_ABSENT = 10_000
 
 
 def new_secret() -> tuple[str, str]:
@@ -81,6 +82,9 @@ class KeyRing:
         clock: Callable[[], float] = time.monotonic,
     ) -> None:
         self._known: dict[str, tuple[KeyRecord, float]] = {}
+        # Key ids just read and not found, so that the same request does not read them twice;
+        # at most _MAX_ABSENT of them (guessed ids are refused by the failure limit soon after).
+        self._absent: dict[str, float] = {}
         self._cache_seconds = cache_seconds
         self._requests = requests
         self._failures = failures
@@ -94,6 +98,36 @@ class KeyRing:
     def remember(self, record: KeyRecord) -> None:
         self._known[record.key_id] = (record, self._clock())
 
+    def due(self, authorization: str | None) -> str | None:
+        """The key id of this bearer if what is known of it must be (re)read first, else None."""
+        if not authorization:
+            return None
+        scheme, _, secret = authorization.partition(" ")
+        secret = secret.strip()
+        if scheme.lower() != "bearer" or not secret:
+            return None
+        key_id = key_id_of(secret)
+        if key_id == BOOTSTRAP_KEY_ID:
+            return None
+        known = self._known.get(key_id)
+        if known is not None and self._clock() - known[1] < self._cache_seconds:
+            return None
+        return key_id
+
+    def store(self, key_id: str, record: KeyRecord | None) -> None:
+        """What was just read for ``key_id`` (None: no such key)."""
+        if record is None:
+            now = self._clock()
+            self._known.pop(key_id, None)
+            if len(self._absent) >= _MAX_ABSENT:
+                self._absent = {k: t for k, t in self._absent.items() if now - t < self._cache_seconds}
+                if len(self._absent) >= _MAX_ABSENT:
+                    self._absent.clear()
+            self._absent[key_id] = now
+        else:
+            self._absent.pop(key_id, None)
+            self._known[key_id] = (record, self._clock())
+
     def lookup(self, key_id: str, load: KeyLoader) -> KeyRecord | None:
         if key_id == BOOTSTRAP_KEY_ID:
             return self._bootstrap
@@ -101,11 +135,11 @@ class KeyRing:
         known = self._known.get(key_id)
         if known is not None and now - known[1] < self._cache_seconds:
             return known[0]
+        absent = self._absent.get(key_id)
+        if absent is not None and now - absent < self._cache_seconds:
+            return None  # read a moment ago (by the caller's worker thread, see deps.py): no such key
         record = load(key_id)
-        if record is None:
-            self._known.pop(key_id, None)
-        else:
-            self._known[key_id] = (record, now)
+        self.store(key_id, record)
         return record
 
     def _refuse(self, detail: str) -> Unauthorized:

@@ -16,6 +16,7 @@ from sqlalchemy import text
 
 from service.api import create_app
 from service.api.auth import KeyRing
+from service.api.errors import Unauthorized
 from service.settings import Settings
 from service.store import Database, KeyRecord, secret_hash
 from service.timestamps import parse_rfc3339
@@ -143,3 +144,24 @@ def test_key_ring_rereads_a_key_after_its_cache_time() -> None:
     now[0] += 0.002  # 2.001 s after the first read
     ring.lookup("k1", load)
     assert loads == ["k1", "k1"]
+
+
+def test_key_ring_tells_when_a_key_must_be_read_first() -> None:
+    now = [100.0]
+    record = KeyRecord("0123456789abcdef", "p", "portal", secret_hash("mxl_0123456789abcdef_s"), datetime.now(UTC))
+    bearer = "Bearer mxl_0123456789abcdef_s"
+    ring = KeyRing(cache_seconds=2.0, clock=lambda: now[0], bootstrap_secret="operator-secret")
+    assert ring.due(bearer) == "0123456789abcdef"
+    assert ring.due("Bearer operator-secret") is None and ring.due(None) is None and ring.due("Basic x") is None
+    ring.store("0123456789abcdef", record)
+    assert ring.due(bearer) is None
+
+    def unreachable(key_id: str) -> KeyRecord | None:
+        raise AssertionError("read again although just read")
+
+    assert ring.caller(bearer, unreachable).key_id == "0123456789abcdef"
+    now[0] += 2.5
+    assert ring.due(bearer) == "0123456789abcdef"  # stale: read again (in a worker thread, deps.py)
+    ring.store("0123456789abcdef", None)  # revoked keys stay; this one was deleted outright
+    with pytest.raises(Unauthorized):
+        ring.caller(bearer, unreachable)  # known absent for the cache time: not read twice
