@@ -165,6 +165,8 @@ class ChainWriter:
     GATHER_GAP_SECONDS = 0.0003
     GATHER_MAX_SECONDS = 0.002
     GATHER_WRITE_SHARE = 0.5
+    # After a failed connect, jobs fail at once for this long before the next attempt.
+    RECONNECT_PAUSE_SECONDS = 0.5
 
     def __init__(self, engine: Engine, *, max_group_rows: int = 50_000) -> None:
         self._engine = engine
@@ -177,6 +179,7 @@ class ChainWriter:
         self._connection: Any = None  # a pooled DBAPI connection, owned by the writer thread
         self._checkpointer = WalCheckpointer(engine) if self._dialect == "sqlite" else None
         self._last_purge = 0.0
+        self._refused: tuple[float, Exception] | None = None  # (until when, the connect error)
 
     @property
     def running(self) -> bool:
@@ -393,14 +396,23 @@ class ChainWriter:
     def _checkout(self) -> Any:
         if self._connection is None:
             driver_error = self._engine.dialect.loaded_dbapi.Error
+            refused = self._refused
+            if refused is not None and time.monotonic() < refused[0]:
+                # Connected and failed a moment ago: the jobs waiting now fail at once instead of
+                # each trying (and, with a server that does not answer, waiting out the timeout).
+                raise DBAPIError.instance(
+                    None, None, refused[1], driver_error, connection_invalidated=True
+                ) from refused[1]
             try:
                 self._connection = self._engine.raw_connection()
             except driver_error as error:
+                self._refused = (time.monotonic() + self.RECONNECT_PAUSE_SECONDS, error)
                 # The pool hands out the driver's own error here; callers tell an unreachable
                 # database by SQLAlchemy's classes, as everywhere else.
                 raise DBAPIError.instance(
                     None, None, error, driver_error, connection_invalidated=True
                 ) from error
+            self._refused = None
             if self._dialect == "sqlite":
                 sqlite = self._connection.driver_connection
                 sqlite.execute(f"PRAGMA cache_size=-{_SQLITE_WRITER_CACHE_KIB}")
