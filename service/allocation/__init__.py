@@ -5,7 +5,7 @@ numerics below it; knows nothing of HTTP or databases.
 """
 
 from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
-from .engine import Allocations, allocate, decide, line_for
+from .engine import Allocations, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .identifiers import AllocationIds
 from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
@@ -22,8 +22,9 @@ from .mixes import (
 )
 from .money import format_units, minor_exponent, money_texts, parse_amount, parse_amounts
 from .policy import Policy, build_policy, check_rates
-from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
 from .answers import answer_texts
+from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
+from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, read_batch, read_single
 
 __all__ = [
     "DISCLOSURES",
@@ -31,9 +32,11 @@ __all__ = [
     "MAX_LISTED",
     "MEMBER_ID_PATTERN",
     "RECORD_FORM",
+    "VERSION_PATTERN",
     "AllocationError",
     "AllocationIds",
     "AllocationLine",
+    "AllocationRequest",
     "Allocations",
     "Context",
     "Decisions",
@@ -42,7 +45,9 @@ __all__ = [
     "Members",
     "MixView",
     "Policy",
+    "TooManyMembers",
     "allocate",
+    "allocate_each",
     "answer_texts",
     "batch_field",
     "build_policy",
@@ -61,7 +66,9 @@ __all__ = [
     "parse_amount",
     "parse_amounts",
     "published_document",
+    "read_batch",
     "read_members",
+    "read_single",
     "record_texts",
     "single_field",
     "solve",

@@ -6,7 +6,6 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
-from starlette.concurrency import run_in_threadpool
 
 from .auth import Caller
 from .state import AppState
@@ -24,18 +23,14 @@ StateDep = Annotated[AppState, Depends(get_state)]
 
 # Async so that FastAPI does not hop to a worker thread for them on every request; a key is read
 # from the database on its first use in this process and every few seconds after (auth.py), in a
-# worker thread: a database that hangs must not stall the event loop (and /livez with it).
+# worker thread (AppState.caller).
 async def current_caller(
     request: Request,
     state: StateDep,
     _credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
 ) -> Caller:
     # The raw header is read again so that a malformed scheme gets our 401, not HTTPBearer's 403.
-    authorization = request.headers.get("authorization")
-    due = state.keys.due(authorization)
-    if due is not None:
-        state.keys.store(due, await run_in_threadpool(state.load_key, due))
-    return state.keys.caller(authorization, state.load_key)
+    return await state.caller(request.headers.get("authorization"))
 
 
 CallerDep = Annotated[Caller, Depends(current_caller)]

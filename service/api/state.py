@@ -15,6 +15,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from sqlalchemy.exc import SQLAlchemyError
+from starlette.concurrency import run_in_threadpool
 
 from service.allocation import (
     AllocationError,
@@ -44,7 +45,8 @@ from service.store import (
 )
 
 from .access_log import AccessLog
-from .auth import KeyRing
+from .auth import Caller, KeyRing
+from .deciding import SinglesTogether
 from .errors import ConflictError, NotFound, PayloadTooLarge
 from .metrics import Metrics
 from .rate_limits import TokenBuckets
@@ -254,7 +256,17 @@ class AppState:
                 "(id %s) that lasts only as long as this process (development only)", self.signer.key_id,
             )
         self.mixes = MixCatalog(database, settings, metrics)
+        self.singles = SinglesTogether()
         self._plans: dict[str, PlanView] = {}
+
+    async def caller(self, authorization: str | None) -> Caller:
+        """The caller a bearer names. A key read for the first time, or re-read once its cache time
+        is over (auth.py), is read in a worker thread: a database that hangs must not stall the
+        event loop (and /livez with it)."""
+        due = self.keys.due(authorization)
+        if due is not None:
+            self.keys.store(due, await run_in_threadpool(self.load_key, due))
+        return self.keys.caller(authorization, self.load_key)
 
     def load_key(self, key_id: str) -> KeyRecord | None:
         with self.db.reading() as s:

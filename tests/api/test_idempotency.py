@@ -167,3 +167,19 @@ async def test_a_fresh_crash_holds_the_key_for_its_lease_only(database: Database
                 await asyncio.sleep(0.1)
             assert r.status_code == 201, r.text
             assert await logged(world, new_plan_id, keys) == 1
+
+
+async def test_a_keyed_batch_larger_than_one_chunk_replays(world: World, new_plan_id: str) -> None:
+    from service.api.allocating import CHUNK
+
+    keys = await setup(world, new_plan_id)
+    n = CHUNK + 11  # staged in two chunks, its answer stored as it becomes visible
+    body = {"mix_version": DEMO_MIX["version"],
+            "members": [{"member_id": f"m{i}", "amount": "100.00", "preference": {"risk_aversion": 3}} for i in range(n)]}
+    url = f"/v1/plans/{new_plan_id}/allocations/batch"
+    headers = keys["portal"] | {"Idempotency-Key": '"big-nightly"'}
+    first = await world.client.post(url, json=body, headers=headers)
+    assert first.status_code == 201, first.text[:300]
+    again = await world.client.post(url, json=body, headers=headers)
+    assert again.status_code == 201 and again.headers["Mixline-Replay"] == "true" and again.json() == first.json()
+    assert await logged(world, new_plan_id, keys) == n
