@@ -64,6 +64,8 @@ class AccessLog:
         self._suppressed: dict[tuple[str, str], int] = {}
         self._outage_line_at = -math.inf
         self._outage_refused = 0
+        self._second = -1
+        self._second_text = ""
 
     # -- called by request handlers (cheap, never blocking) ---------------------------------
 
@@ -176,17 +178,28 @@ class AccessLog:
             if stop:
                 return
 
-    @staticmethod
-    def _line(item: tuple[Any, ...]) -> bytes:
+    def _time(self, at: float) -> str:
+        """rfc3339 of a unix time; the text up to the second is made once per second (this runs
+        once per request, on the thread that shares the GIL with the event loop)."""
+        second = int(at)
+        micros = round((at - second) * 1e6)  # to the nearest microsecond, as datetime rounds
+        if micros >= 1_000_000:
+            second, micros = second + 1, micros - 1_000_000
+        if second != self._second:
+            self._second = second
+            self._second_text = rfc3339(datetime.fromtimestamp(second, UTC))[:-8]  # without ".ffffffZ"
+        return f"{self._second_text}.{micros:06d}Z"
+
+    def _line(self, item: tuple[Any, ...]) -> bytes:
         if len(item) == 2:
             entry, exc = item
-            entry = {**entry, "time": rfc3339(datetime.fromtimestamp(entry["time"], UTC))}
+            entry = {**entry, "time": self._time(entry["time"])}
             if exc is not None:
                 entry["traceback"] = "".join(traceback.format_exception(exc))
             return orjson.dumps(entry) + b"\n"
         at, method, route, status, seconds, request_id, key_id = item
         return orjson.dumps({
-            "time": rfc3339(datetime.fromtimestamp(at, UTC)),
+            "time": self._time(at),
             "event": "request",
             "request_id": request_id,
             "method": method,

@@ -200,3 +200,17 @@ async def test_csv_only_where_a_route_names_it() -> None:
         assert refused.status_code == 415 and "text/csv" in refused.json()["detail"]
         wrong = await client.post("/v1/plans/p1/table", content=b"<a/>", headers={"Content-Type": "application/xml"})
         assert wrong.status_code == 415 and "application/json or text/csv" in wrong.json()["detail"]
+
+
+def test_access_log_times_are_rfc3339_to_the_microsecond() -> None:
+    import random
+    from datetime import UTC, datetime
+
+    from service.timestamps import rfc3339
+
+    rng = random.Random(9)
+    log = AccessLog("off")
+    moments = [rng.uniform(1.7e9, 1.9e9) for _ in range(2000)] + [1764640000.9999996, 1764640000.0, 1764640000.5]
+    for at in sorted(moments):
+        # datetime.fromtimestamp rounds to the nearest microsecond: the reference.
+        assert log._time(at) == rfc3339(datetime.fromtimestamp(at, UTC)), at
