@@ -137,7 +137,7 @@ class KeyRing:
             return known[0]
         absent = self._absent.get(key_id)
         if absent is not None and now - absent < self._cache_seconds:
-            return None  # read a moment ago (by the caller's worker thread, see deps.py): no such key
+            return None  # read a moment ago (in a worker thread, see AppState.caller): no such key
         record = load(key_id)
         self.store(key_id, record)
         return record

@@ -161,7 +161,7 @@ def test_key_ring_tells_when_a_key_must_be_read_first() -> None:
 
     assert ring.caller(bearer, unreachable).key_id == "0123456789abcdef"
     now[0] += 2.5
-    assert ring.due(bearer) == "0123456789abcdef"  # stale: read again (in a worker thread, deps.py)
+    assert ring.due(bearer) == "0123456789abcdef"  # stale: read again (in a worker thread, AppState.caller)
     ring.store("0123456789abcdef", None)  # revoked keys stay; this one was deleted outright
     with pytest.raises(Unauthorized):
         ring.caller(bearer, unreachable)  # known absent for the cache time: not read twice
