@@ -5,8 +5,26 @@ from __future__ import annotations
 import argparse
 import sys
 from pathlib import Path
+from types import FrameType
+from typing import TYPE_CHECKING, Any
 
 from service.settings import Settings
+
+if TYPE_CHECKING:
+    from service.store import Database
+
+
+def _database(settings: Settings) -> Database:
+    from service.store import Database
+
+    return Database(
+        settings.database_url, pool_size=settings.db_pool_size, max_overflow=settings.db_max_overflow
+    )
+
+
+# How long uvicorn lets requests in progress finish after SIGTERM; deploy/kubernetes gives the
+# pod terminationGracePeriodSeconds = preStop sleep + this + time to flush the log writer.
+GRACEFUL_SHUTDOWN_SECONDS = 25
 
 
 def _serve(settings: Settings, host: str, port: int, migrate: bool) -> None:
@@ -15,7 +33,24 @@ def _serve(settings: Settings, host: str, port: int, migrate: bool) -> None:
     from service.api import create_app
 
     app = create_app(settings, migrate=migrate)
-    uvicorn.run(app, host=host, port=port, log_level="info", access_log=False)
+    config = uvicorn.Config(
+        app, host=host, port=port, log_level="info", access_log=False,
+        timeout_graceful_shutdown=GRACEFUL_SHUTDOWN_SECONDS,
+    )
+    draining_server(config).run()
+
+
+def draining_server(config: Any) -> Any:
+    """A uvicorn Server that marks the app not ready the moment a stop signal arrives, before
+    uvicorn starts waiting for the requests in progress (the lifespan's shutdown comes later)."""
+    import uvicorn
+
+    class DrainingServer(uvicorn.Server):
+        def handle_exit(self, sig: int, frame: FrameType | None) -> None:
+            config.app.state.mixline.shutting_down = True
+            super().handle_exit(sig, frame)
+
+    return DrainingServer(config)
 
 
 DEMO_DATABASE_URL = "sqlite:///./mixline-demo.db"
@@ -53,7 +88,6 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     from service.api.state import AppState
     from service.demo import DEMO_ALLOCATION, DEMO_MIX, DEMO_PLAN
     from service.store import (
-        Database,
         get_plan,
         insert_key,
         insert_plan,
@@ -69,7 +103,7 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     if refusal is not None:
         print(f"mixline demo: refused: {refusal}", file=sys.stderr)
         return 2
-    db = Database(settings.database_url)
+    db = _database(settings)
     db.upgrade()
     with db.reading() as s:
         others = [row[0] for row in s.execute(text("SELECT plan_id FROM plans WHERE plan_id <> :p"), {"p": DEMO_PLAN["plan_id"]})]
@@ -126,7 +160,6 @@ def _audit_verify(settings: Settings, plan_id: str | None, head_file: str | None
     from sqlalchemy import text
 
     from service.store import (
-        Database,
         SignedHead,
         check_against_head,
         get_plan,
@@ -160,7 +193,7 @@ def _audit_verify(settings: Settings, plan_id: str | None, head_file: str | None
                   f"{key_source} (key id {head.key_id}), or was changed after signing")
             return 1
 
-    db = Database(settings.database_url)
+    db = _database(settings)
     try:
         if plan_id:
             with db.reading() as s:
@@ -200,7 +233,7 @@ def _audit_head(settings: Settings, plan_id: str) -> int:
     """Print the plan's chain head signed with MIXLINE_SIGNING_KEY_FILE (for keeping elsewhere)."""
     import json
 
-    from service.store import Database, HeadSigner, current_head, get_plan
+    from service.store import HeadSigner, current_head, get_plan
     from service.timestamps import utc_now
 
     if not settings.signing_key_file:
@@ -208,7 +241,7 @@ def _audit_head(settings: Settings, plan_id: str) -> int:
               file=sys.stderr)
         return 2
     signer = HeadSigner.from_file(settings.signing_key_file)
-    db = Database(settings.database_url)
+    db = _database(settings)
     try:
         with db.reading() as s:
             if get_plan(s, plan_id) is None:
@@ -250,9 +283,11 @@ def main(argv: list[str] | None = None) -> int:
     elif args.command == "demo":
         return _demo(settings, args.host, args.port)
     elif args.command == "migrate":
-        from service.store import Database
-
-        Database(settings.database_url).upgrade()
+        db = _database(settings)
+        try:
+            db.upgrade()  # idempotent: a re-run at head changes nothing
+        finally:
+            db.close()
         print("migrations applied")
     elif args.command == "audit" and args.audit_command == "head":
         return _audit_head(settings, args.plan)

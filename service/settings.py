@@ -70,6 +70,11 @@ class Settings(BaseSettings):
     signing_key_file: str | None = None
     # The JSON access log: "stdout", "stderr", "off", or a file path (appended to).
     access_log: str = "stdout"
+    # Database connections one process may hold: db_pool_size kept open, up to db_max_overflow
+    # more under load (the log writer's own connection included). Replicas x (size + overflow)
+    # must stay below the server's max_connections; deploy/kubernetes/deployment.yaml shows the sum.
+    db_pool_size: int = Field(default=10, ge=1)
+    db_max_overflow: int = Field(default=20, ge=0)
 
     @model_validator(mode="after")
     def _refuse_placeholder_secrets(self) -> Settings:
@@ -88,9 +93,4 @@ class Settings(BaseSettings):
             weakness = secret_weakness(str(password), min_length=1)
             if weakness is not None:
                 raise ValueError(f"the password in MIXLINE_DATABASE_URL {weakness}; refusing to start in production")
-        if not self.signing_key_file:
-            raise ValueError(
-                "MIXLINE_SIGNING_KEY_FILE is unset: production signs audit heads with a key that "
-                "outlives the process (and is the same on every replica); refusing to start"
-            )
         return self

@@ -7,7 +7,7 @@ import json
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
-from pathlib import Path
+from importlib.resources import files
 from typing import Any
 
 from fastapi import FastAPI
@@ -18,9 +18,11 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
+from service.version import VERSION
 
 from . import allocations, audit, errors, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
+from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
 from .gateway import Gateway, csv_routes
 from .metrics import Metrics, MetricsMiddleware
@@ -28,7 +30,8 @@ from .schemas import AllocationIn, BatchIn, MixIn, Problem
 from .state import AppState
 
 log = logging.getLogger("mixline.api")
-EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
+# Package data (pyproject's package-data), so an installed package, the image included, has them.
+EXAMPLES = files("service.api") / "openapi_examples"
 
 
 class BodyLimit:
@@ -101,8 +104,11 @@ def bootstrap(state: AppState) -> None:
 
 def create_app(settings: Settings | None = None, database: Database | None = None, *, migrate: bool = True) -> FastAPI:
     settings = settings or Settings()
-    db = database or Database(settings.database_url)
+    db = database or Database(
+        settings.database_url, pool_size=settings.db_pool_size, max_overflow=settings.db_max_overflow
+    )
     metrics = Metrics()
+    metrics.watch_writer(db.writer)
     state = AppState(settings, db, metrics)
 
     @asynccontextmanager
@@ -119,6 +125,8 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
         try:
             yield
         finally:
+            state.shutting_down = True
+            state.batches.close()
             state.mixes.close()
             if database is None:
                 db.close()
@@ -126,13 +134,15 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
 
     app = FastAPI(
         title="mixline",
-        version="1.0.0",
+        version=VERSION,
         summary="Per-member risky/safe splits by mean-variance reasoning, every answer logged tamper-evidently.",
         description=(
             "Every recommendation follows from the plan's stated assumptions, which are estimates; it "
             "is not individual advice; local rules and licensed advice prevail."
         ),
         lifespan=lifespan,
+        docs_url=None,  # served by docs.install_docs, from the service's own assets
+        redoc_url=None,
     )
     app.state.mixline = state
     app.state.metrics = metrics
@@ -144,14 +154,13 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(Gateway, log=state.access_log, csv_paths=csv_routes(app.routes))
     install_openapi(app)
+    install_docs(app)
     return app
 
 
 def _load_examples() -> dict[str, dict[str, Any]]:
     found: dict[str, dict[str, Any]] = {}
-    if not EXAMPLES_DIR.is_dir():
-        return found
-    for path in sorted(EXAMPLES_DIR.glob("*.json")):
+    for path in sorted((p for p in EXAMPLES.iterdir() if p.name.endswith(".json")), key=lambda p: p.name):
         example = json.loads(path.read_text())
         found.setdefault(example["operation_id"], example)
     return found

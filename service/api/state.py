@@ -46,6 +46,7 @@ from service.store import (
 
 from .access_log import AccessLog
 from .auth import Caller, KeyRing
+from .batch_process import BatchProcess
 from .deciding import SinglesTogether
 from .errors import ConflictError, NotFound, PayloadTooLarge
 from .metrics import Metrics
@@ -209,7 +210,7 @@ class MixCatalog:
             assert raced is not None
             return self._same_or_conflict(request.version, digest, raced)
         self._remember(plan.plan_id, request.version, digest, solved, doc)
-        self._metrics.mixes.inc()
+        self._metrics.mixes.labels(plan.plan_id).inc()
         return True, doc
 
     def solve_frontier_later(self, plan_id: str, version: str) -> None:
@@ -247,9 +248,15 @@ class AppState:
         self.access_log = AccessLog(settings.access_log)
         if settings.signing_key_file:
             self.signer = HeadSigner.from_file(settings.signing_key_file)
+        elif settings.environment == "production":
+            # Checked here, not in Settings: `mixline migrate` and `audit verify` sign nothing.
+            raise ValueError(
+                "MIXLINE_SIGNING_KEY_FILE is unset: production signs audit heads with a key that "
+                "outlives the process and is the same on every replica; refusing to serve"
+            )
         else:
-            # Settings refuse this in production: heads signed by a key that dies with the
-            # process (and differs per replica) cannot be checked later.
+            # Heads signed by a key that dies with the process (and differs per replica) cannot
+            # be checked later: development only.
             self.signer = HeadSigner.generated()
             log.warning(
                 "MIXLINE_SIGNING_KEY_FILE unset: audit heads are signed with an ephemeral key "
@@ -257,7 +264,11 @@ class AppState:
             )
         self.mixes = MixCatalog(database, settings, metrics)
         self.singles = SinglesTogether()
+        self.batches = BatchProcess()
         self._plans: dict[str, PlanView] = {}
+        # Set once the process begins to stop (SIGTERM, or the lifespan's shutdown): /readyz then
+        # answers 503, so a balancer still holding a connection to it sends no new work.
+        self.shutting_down = False
 
     async def caller(self, authorization: str | None) -> Caller:
         """The caller a bearer names. A key read for the first time, or re-read once its cache time

@@ -170,7 +170,7 @@ async def test_a_fresh_crash_holds_the_key_for_its_lease_only(database: Database
 
 
 async def test_a_keyed_batch_larger_than_one_chunk_replays(world: World, new_plan_id: str) -> None:
-    from service.api.allocating import CHUNK
+    from service.allocation.batch_worker import STREAM_CHUNK as CHUNK
 
     keys = await setup(world, new_plan_id)
     n = CHUNK + 11  # staged in two chunks, its answer stored as it becomes visible
