@@ -87,7 +87,7 @@ class Settings(BaseSettings):
                 raise ValueError(f"MIXLINE_BOOTSTRAP_OPERATOR_KEY {weakness}; refusing to start in production")
         try:
             password = make_url(self.database_url).password
-        except Exception:  # noqa: BLE001 - a malformed URL is refused by the database layer itself
+        except Exception:
             password = None
         if password is not None:
             weakness = secret_weakness(str(password), min_length=1)

@@ -4,6 +4,7 @@ One pipeline (engine.py) answers a single member and a 300,000-member batch alik
 numerics below it; knows nothing of HTTP or databases.
 """
 
+from .answers import answer_texts
 from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
 from .engine import Allocations, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
@@ -23,7 +24,6 @@ from .mixes import (
 )
 from .money import format_units, minor_exponent, money_texts, parse_amount, parse_amounts
 from .policy import Policy, build_policy, check_rates
-from .answers import answer_texts
 from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
 from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, parse_json, read_batch, read_single
 

@@ -125,7 +125,7 @@ class AccessLog:
             elif self.target in ("stderr", "off"):
                 self._stream = sys.stderr
             else:
-                self._owned = self._stream = open(self.target, "a", encoding="utf-8")  # noqa: SIM115
+                self._owned = self._stream = open(self.target, "a", encoding="utf-8")
             self._thread = threading.Thread(target=self._run, name="mixline-access-log", daemon=True)
             self._thread.start()
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 from collections.abc import Awaitable
 from concurrent.futures import Future
+
 import orjson
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response

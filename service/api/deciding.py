@@ -79,7 +79,7 @@ class SinglesTogether:
                 )
                 records = done.records()
                 answers = done.answers(inline_disclosures=True)
-            except Exception as error:  # noqa: BLE001 - every waiting request gets the failure
+            except Exception as error:
                 for _, future in entries:
                     if not future.done():
                         future.set_exception(error)

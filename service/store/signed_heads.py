@@ -62,7 +62,7 @@ def load_public_key(pem: bytes) -> Ed25519PublicKey:
         return private.public_key()
     public = serialization.load_pem_public_key(pem)
     if not isinstance(public, Ed25519PublicKey):
-        raise ValueError("not an Ed25519 public key")  # noqa: TRY004 - bad input, not a bad call
+        raise ValueError("not an Ed25519 public key")
     return public
 
 
@@ -82,7 +82,7 @@ class SignedHead:
     def from_document(cls, doc: Any) -> SignedHead:
         """Raises ValueError naming what is wrong with an exported head."""
         if not isinstance(doc, dict):
-            raise ValueError("a head is a JSON object")  # noqa: TRY004 - bad input, not a bad call
+            raise ValueError("a head is a JSON object")
         missing = [name for name in _FIELDS if name not in doc]
         if missing:
             raise ValueError(f"the head lacks {', '.join(missing)}")
@@ -90,7 +90,7 @@ class SignedHead:
             raise ValueError("seq must be a whole number >= 0")
         for name in ("plan_id", "hash", "signed_at", "key_id", "signature"):
             if not isinstance(doc[name], str):
-                raise ValueError(f"{name} must be a string")  # noqa: TRY004 - bad input, not a bad call
+                raise ValueError(f"{name} must be a string")
         parse_rfc3339(doc["signed_at"])
         return cls(doc["plan_id"], doc["seq"], doc["hash"], doc["signed_at"], doc["key_id"], doc["signature"])
 
@@ -116,7 +116,7 @@ class HeadSigner:
     def from_file(cls, path: str | Path) -> HeadSigner:
         key = serialization.load_pem_private_key(Path(path).read_bytes(), password=None)
         if not isinstance(key, Ed25519PrivateKey):
-            raise ValueError(f"{path}: not an Ed25519 private key (PEM, PKCS#8)")  # noqa: TRY004 - bad input, not a bad call
+            raise ValueError(f"{path}: not an Ed25519 private key (PEM, PKCS#8)")
         return cls(key, ephemeral=False)
 
     @classmethod
@@ -162,10 +162,10 @@ def check_against_head(session: Session, head: SignedHead) -> str | None:
         )
     if head.seq == 0:
         return None if head.hash == GENESIS_HASH else "a head of seq 0 must carry the genesis hash"
-    stored = session.execute(
+    stored: list[str] = list(session.execute(
         text("SELECT row_hash FROM allocations WHERE plan_id = :p AND seq = :s"),
         {"p": head.plan_id, "s": head.seq},
-    ).scalars().all()
+    ).scalars())
     if len(stored) != 1:
         return f"the chain has {len(stored)} rows of seq {head.seq}; the signed head names one"
     if stored[0] != head.hash:
