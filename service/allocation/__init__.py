@@ -6,7 +6,7 @@ numerics below it; knows nothing of HTTP or databases.
 
 from .answers import answer_texts
 from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
-from .engine import Allocations, allocate, allocate_each, decide, line_for
+from .engine import Allocations, Setting, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .identifiers import AllocationIds
 from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
@@ -47,6 +47,7 @@ __all__ = [
     "MixTerms",
     "MixView",
     "Policy",
+    "Setting",
     "TooManyMembers",
     "allocate",
     "allocate_each",

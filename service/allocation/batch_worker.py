@@ -84,12 +84,8 @@ def serve_batches(conn: Connection) -> None:
         message = conn.recv()
         if message[0] != "decide":
             continue
-        _, plan_id, currency, policy, terms, created_at = message
         try:
-            prepared = allocate(
-                request.members, plan_id=plan_id, currency=currency, policy=policy, view=terms,
-                created_at=created_at, new_ids=ids.block, locate=request.locate,
-            )
+            prepared = allocate(request.members, message[1], new_ids=ids.block, locate=request.locate)
         except Exception as error:
             conn.send(("refused", Refusal.of(error)))
             continue
