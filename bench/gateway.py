@@ -22,11 +22,11 @@ from typing import Any
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.api.access_log import AccessLog  # noqa: E402
-from service.api.auth import KeyRing  # noqa: E402
-from service.api.gateway import Gateway  # noqa: E402
-from service.api.rate_limits import TokenBuckets  # noqa: E402
-from service.store import KeyRecord, secret_hash  # noqa: E402
+from service.api.access_log import AccessLog
+from service.api.auth import KeyRing
+from service.api.gateway import Gateway
+from service.api.rate_limits import TokenBuckets
+from service.store import KeyRecord, secret_hash
 
 SECRET = "mxl_0123456789abcdef_" + "x" * 43
 RECORD = KeyRecord("0123456789abcdef", "plan", "portal", secret_hash(SECRET), datetime.now(UTC))

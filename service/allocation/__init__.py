@@ -9,6 +9,7 @@ from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
 from .engine import Allocations, Setting, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .identifiers import AllocationIds
+from .impact import Impact, impact
 from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
 from .line import AllocationLine
 from .members import MEMBER_ID_PATTERN, Members, read_members
@@ -16,7 +17,9 @@ from .mixes import (
     MixTerms,
     MixView,
     canonical_inputs,
+    canonical_text,
     content_hash,
+    cross_checks_wanted,
     frontier_document,
     is_finite_document,
     published_document,
@@ -42,6 +45,7 @@ __all__ = [
     "Context",
     "Decisions",
     "FieldIssue",
+    "Impact",
     "MemberErrors",
     "Members",
     "MixTerms",
@@ -55,13 +59,16 @@ __all__ = [
     "batch_field",
     "build_policy",
     "canonical_inputs",
+    "canonical_text",
     "check_rates",
     "content_hash",
     "decide",
     "decisions_from_record",
+    "cross_checks_wanted",
     "disclosures_for",
     "format_units",
     "frontier_document",
+    "impact",
     "is_finite_document",
     "line_for",
     "minor_exponent",

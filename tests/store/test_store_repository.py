@@ -42,7 +42,7 @@ def test_public_names_are_exactly_the_interface() -> None:
             "GENESIS_HASH", "HeadSigner", "SignedHead", "check_against_head", "current_head", "load_public_key", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream", "IdempotencyCompletion", "IdempotencyLeaseLost", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
-            "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches", "set_active_version",
+            "latest_allocations", "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches", "set_active_version",
             "upsert_key", "verify_chain",
         ]
     )
