@@ -34,11 +34,11 @@ from sqlalchemy.exc import DBAPIError
 
 from service.store.chain import GENESIS_HASH, SEPARATOR
 from service.store.idempotency import (
-    COMPLETE_SQL,
     IdempotencyRecord,
     KeyOperation,
     KeyRelease,
     KeyReservation,
+    complete,
     completion_parameters,
     purge,
 )
@@ -155,7 +155,7 @@ class _Chains:
             self.heads[plan_id] = (seq, prev_hash)
 
 
-def _completions(jobs: Iterable[_Job]) -> list[tuple[int, str, str, str, str]]:
+def _completions(jobs: Iterable[_Job]) -> list[tuple[Any, ...]]:
     """Idempotency answers to store with these rows (a stream's arrives after its last row)."""
     found = []
     for job in jobs:
@@ -177,6 +177,8 @@ class ChainWriter:
     GATHER_GAP_SECONDS = 0.0003
     GATHER_MAX_SECONDS = 0.002
     GATHER_WRITE_SHARE = 0.5
+    # After a failed connect, jobs fail at once for this long before the next attempt.
+    RECONNECT_PAUSE_SECONDS = 0.5
 
     def __init__(self, engine: Engine, *, max_group_rows: int = 50_000) -> None:
         self._engine = engine
@@ -192,6 +194,7 @@ class ChainWriter:
         # While a stream is written, WAL checkpoints wait: copying pages back to the database
         # file then would compete with the stream's own writes (one checkpoint follows it).
         self._streaming = False
+        self._refused: tuple[float, Exception] | None = None  # (until when, the connect error)
         # Called on the writer thread after each group as (jobs, rows, seconds); the api layer
         # turns it into metrics, so this module needs no metrics library. Once per group, not per row.
         self.group_written: Callable[[int, int, float], None] | None = None
@@ -474,7 +477,9 @@ class ChainWriter:
                     f"UPDATE allocation_batches SET state = {p} WHERE batch_id = {p}", (state, stream.batch_id)
                 )
             if completes is not None:
-                cursor.execute(COMPLETE_SQL.format(p=p), completion_parameters(completes))
+                # The lease check as for any answer: one whose reservation was taken over
+                # leaves the batch invisible.
+                complete(cursor, [completion_parameters(completes)], p)
             dbapi.commit()
         except BaseException:
             self._rollback(dbapi)
@@ -537,7 +542,24 @@ class ChainWriter:
 
     def _checkout(self) -> Any:
         if self._connection is None:
-            self._connection = self._engine.raw_connection()
+            driver_error = self._engine.dialect.loaded_dbapi.Error
+            refused = self._refused
+            if refused is not None and time.monotonic() < refused[0]:
+                # Connected and failed a moment ago: the jobs waiting now fail at once instead of
+                # each trying (and, with a server that does not answer, waiting out the timeout).
+                raise DBAPIError.instance(
+                    None, None, refused[1], driver_error, connection_invalidated=True
+                ) from refused[1]
+            try:
+                self._connection = self._engine.raw_connection()
+            except driver_error as error:
+                self._refused = (time.monotonic() + self.RECONNECT_PAUSE_SECONDS, error)
+                # The pool hands out the driver's own error here; callers tell an unreachable
+                # database by SQLAlchemy's classes, as everywhere else.
+                raise DBAPIError.instance(
+                    None, None, error, driver_error, connection_invalidated=True
+                ) from error
+            self._refused = None
             if self._dialect == "sqlite":
                 sqlite = self._connection.driver_connection
                 sqlite.execute(f"PRAGMA cache_size=-{_SQLITE_WRITER_CACHE_KIB}")
@@ -588,9 +610,7 @@ class ChainWriter:
             "SET last_seq = excluded.last_seq, last_hash = excluded.last_hash",
             [(plan_id, seq, last) for plan_id, (seq, last) in chains.heads.items()],
         )
-        completions = _completions(jobs)
-        if completions:
-            dbapi.executemany(COMPLETE_SQL.format(p="?"), completions)
+        complete(dbapi.cursor(), _completions(jobs), "?")
         dbapi.commit()
         if self._checkpointer is not None and not self._streaming:
             self._checkpointer.committed(sum(job.size for job in jobs))
@@ -617,13 +637,13 @@ class ChainWriter:
                     for row in chains.rows(jobs):
                         copy.write_row(row)
                 cursor.executemany(move_heads, _head_rows(chains))
-                completions = _completions(jobs)
-                if completions:
-                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
+                complete(cursor, _completions(jobs), "%s")
                 dbapi.commit()
                 return
             rows = list(chains.rows(jobs))
-            completions = _completions(jobs)
+            # Before the pipeline, which gives no row counts: an answer whose reservation was
+            # taken over must fail its transaction (one round trip per keyed request).
+            complete(cursor, _completions(jobs), "%s")
             # Insert, head update and COMMIT in one round trip (plus the lock's): this
             # path serves the small groups, where round trips are most of the time.
             with dbapi.pipeline():
@@ -633,8 +653,6 @@ class ChainWriter:
                     rows,
                 )
                 cursor.executemany(move_heads, _head_rows(chains))
-                if completions:
-                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
                 dbapi.commit()
 
     @staticmethod
