@@ -147,6 +147,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
+    app.include_router(allocations.posting)  # the busiest routes first: matched soonest
     for module in (allocations, plans, mixes, impact, audit, operations):
         app.include_router(module.router)
     app.include_router(audit.keys_router)
