@@ -114,6 +114,9 @@ def seed(server: Server) -> dict[str, str]:
         keys[role] = json.loads(body)["secret"]
     status, body = call(server.base, "POST", f"/v1/plans/{PLAN}/mixes", keys["committee"], DEMO_MIX | {"cross_check": False})
     assert status == 201, body
+    # Allocations are made only against the active version.
+    status, body = call(server.base, "POST", f"/v1/plans/{PLAN}/mixes/{DEMO_MIX['version']}/activate", keys["committee"], None)
+    assert status == 200, body
     return keys
 
 

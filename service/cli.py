@@ -26,7 +26,7 @@ def _demo(settings: Settings, host: str, port: int) -> None:
     from service.api.schemas import MixIn
     from service.api.state import AppState
     from service.demo import DEMO_ALLOCATION, DEMO_MIX, DEMO_PLAN
-    from service.store import Database, get_plan, insert_key, insert_plan, secret_hash, set_active_version
+    from service.store import Database, get_plan, insert_key, insert_plan, secret_hash
 
     db = Database(settings.database_url)
     db.upgrade()
@@ -39,9 +39,9 @@ def _demo(settings: Settings, host: str, port: int) -> None:
             )
     state = AppState(settings, db, Metrics())
     plan = state.plan(DEMO_PLAN["plan_id"])
-    created, doc = state.mixes.publish(plan, MixIn.model_validate(DEMO_MIX))
-    with db.writing() as s:
-        set_active_version(s, plan.plan_id, DEMO_MIX["version"])
+    # Published and activated by the demo's own set-up, not by a key.
+    created, doc = state.mixes.publish(plan, MixIn.model_validate(DEMO_MIX), "demo-setup")
+    state.mixes.activate(plan.plan_id, DEMO_MIX["version"], "demo-setup")
     secrets_by_role = {}
     with db.writing() as s:
         for role in ("committee", "portal", "operator"):

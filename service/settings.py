@@ -30,6 +30,10 @@ class Settings(BaseSettings):
     max_assets: int = Field(default=2000, ge=1)
     # Largest number of frontier points one request may ask for.
     max_frontier_points: int = Field(default=500, ge=2)
+    # How long a replica may answer allocations from the active version it last read, in
+    # seconds: an activation on any replica is in force everywhere within this (bounded so that
+    # replicas always agree within 5 s).
+    active_version_ttl_seconds: float = Field(default=1.0, ge=0.0, le=2.0)
 
     @model_validator(mode="after")
     def _refuse_placeholder_secrets(self) -> Settings:

@@ -5,10 +5,22 @@ Imports numerics below it; knows nothing of HTTP or databases.
 
 from .disclosures import DISCLOSURES, disclosures_for
 from .errors import AllocationError
+from .lifecycle import (
+    RESERVED_VERSION_NAMES,
+    Activation,
+    LifecycleConflict,
+    MixState,
+    check_version_name,
+    plan_activation,
+    plan_retirement,
+    require_in_force,
+    state_of,
+)
 from .line import AllocationLine
 from .mixes import (
     MixView,
     canonical_inputs,
+    check_decimal_rates,
     content_hash,
     frontier_document,
     is_finite_document,
@@ -31,6 +43,16 @@ from .records import RECORD_FORM, record_text, render, render_text
 from .routing import ContributionSplit, route_contribution
 
 __all__ = [
+    "RESERVED_VERSION_NAMES",
+    "Activation",
+    "LifecycleConflict",
+    "MixState",
+    "check_decimal_rates",
+    "check_version_name",
+    "plan_activation",
+    "plan_retirement",
+    "require_in_force",
+    "state_of",
     "DISCLOSURES",
     "RECORD_FORM",
     "Account",

@@ -18,8 +18,41 @@ import orjson
 
 from service.numerics import Frontier, MixInputs, Portfolio, SolvedMix, build_inputs, solve_mix
 
+from .errors import AllocationError
+
 # Version of the canonical form below; part of the hash so a future change cannot collide.
 CANONICAL_FORM = "mixline.mix.v1"
+
+# Above these an annual rate reads as a percentage typed as a number (7 for 7 %), not a decimal.
+MAX_DECIMAL_RETURN = 1.0
+MAX_DECIMAL_VOLATILITY = 1.0
+MAX_DECIMAL_RISK_FREE_RATE = 0.5
+_DECIMALS = "rates and volatilities are annual decimals (0.05 = 5 %)"
+
+
+def check_decimal_rates(
+    expected_returns: Sequence[float],
+    volatilities: Sequence[float | None],
+    risk_free_rate: float,
+    covariance: Sequence[Sequence[float]] | None = None,
+) -> None:
+    """Refuse values that look like percentages; ``field`` names the first one."""
+    for i, mu in enumerate(expected_returns):
+        if mu > MAX_DECIMAL_RETURN:
+            raise AllocationError(f"assets[{i}].expected_return", f"{mu:g} looks like a percentage: {_DECIMALS}")
+    for i, vol in enumerate(volatilities):
+        if vol is not None and vol > MAX_DECIMAL_VOLATILITY:
+            raise AllocationError(f"assets[{i}].volatility", f"{vol:g} looks like a percentage: {_DECIMALS}")
+    if covariance is not None:
+        for i, row in enumerate(covariance):
+            if i < len(row) and row[i] > MAX_DECIMAL_VOLATILITY**2:
+                raise AllocationError(
+                    f"covariance[{i}][{i}]",
+                    f"variance {row[i]:g} is a volatility of {math.sqrt(row[i]):g}, which looks like a "
+                    f"percentage: {_DECIMALS}",
+                )
+    if risk_free_rate > MAX_DECIMAL_RISK_FREE_RATE:
+        raise AllocationError("risk_free_rate", f"{risk_free_rate:g} looks like a percentage: {_DECIMALS}")
 
 
 def canonical_inputs(

@@ -76,7 +76,7 @@ def preference_of(p: PreferenceIn) -> tuple[Preference, dict[str, float | int]]:
 
 def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: str) -> tuple[dict[str, Any], MixView]:
     """The allocation record for one member (not yet logged), and the mix it was made with."""
-    view = state.mixes.view(plan.plan_id, body.mix_version)
+    view = state.mixes.view_in_force(plan.plan_id, body.mix_version)
     preference, preference_doc = preference_of(body.preference)
     holdings = None if body.holdings is None else {"risky": body.holdings.risky, "safe": body.holdings.safe}
     account = account_from_request(plan.currency, body.amount, holdings, body.contribution)

@@ -50,7 +50,7 @@ class PreparedBatch:
 def prepare(state: AppState, plan: PlanView, raw: bytes) -> PreparedBatch:
     """Read, validate and answer every member; nothing is written yet (all or nothing)."""
     request = read_batch(raw, plan.currency, state.settings.batch_limit)
-    view = state.mixes.view(plan.plan_id, request.mix_version)
+    view = state.mixes.view_in_force(plan.plan_id, request.mix_version)
     result = allocate(request.columns, line_for(view, plan.policy), plan.policy, view.weights)
     context = BatchContext(plan.plan_id, view.version, view.content_hash, utc_now_text(), plan.currency)
     return PreparedBatch(context, request, result, new_allocation_id.block(request.columns.size))

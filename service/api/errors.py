@@ -9,7 +9,9 @@
     ├── Unprocessable       422   well-formed but unanswerable input
     └── NotReady            503   readiness failed
 
-Domain errors from below (AllocationError, numerics' InputError) become 422 here; request
+Domain errors from below become problems here: a LifecycleConflict (a version not in force, a
+retired version activated, the only version in force retired) 409 with ``active_version``;
+any other AllocationError and numerics' InputError 422; request
 validation errors become 422 with one entry per field. No handler ever echoes the offending input
 back, so a NaN or a megabyte of garbage can never break the error response itself.
 """
@@ -26,7 +28,7 @@ from fastapi.exceptions import RequestValidationError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
-from service.allocation import AllocationError
+from service.allocation import AllocationError, LifecycleConflict
 from service.numerics import InputError
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
@@ -93,8 +95,11 @@ def problem_response(
     errors: Sequence[dict[str, str]] | None = None,
     headers: dict[str, str] | None = None,
     instance: str | None = None,
+    extra: dict[str, Any] | None = None,
 ) -> Response:
     body: dict[str, Any] = {"type": problem_type(slug), "title": title, "status": status, "detail": detail}
+    if extra:
+        body.update(extra)
     if instance:
         body["instance"] = instance
     if errors:
@@ -152,6 +157,12 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
         return problem_response(
             exc.status, exc.title, exc.detail, slug=exc.slug, errors=exc.errors, headers=exc.headers,
             instance=path,
+        )
+    if isinstance(exc, LifecycleConflict):
+        slug = "version-not-in-force" if exc.field == "mix_version" else "version-state"
+        return problem_response(
+            409, "Conflict", f"{exc.field}: {exc.reason}", slug=slug, errors=[field_error(exc.field, exc.reason)],
+            instance=path, extra={"active_version": exc.active_version},
         )
     if isinstance(exc, AllocationError | InputError):
         return problem_response(

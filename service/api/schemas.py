@@ -19,6 +19,8 @@ from pydantic import (
     model_validator,
 )
 
+from service.allocation import AllocationError, check_decimal_rates, check_version_name
+
 # Separates a sub-field from the reason in a model validator's message (see errors.validation_errors).
 FIELD_MARK = "\x1f"
 
@@ -105,11 +107,13 @@ class KeyOut(BaseModel):
 # ---- risky mixes ----------------------------------------------------------------------------
 
 
-# Annual decimals; the ranges only refuse typos (5 = 500 %) and keep arithmetic far from overflow.
-ExpectedReturn = Annotated[float, Field(ge=-1.0, le=5.0)]
-Volatility = Annotated[float, Field(gt=0.0, le=5.0)]
-Rate = Annotated[float, Field(gt=-1.0, lt=1.0)]
-MatrixEntry = Annotated[float, Field(ge=-25.0, le=25.0)]
+# Annual decimals. Values that look like percentages are refused by the mix rules
+# (allocation.check_decimal_rates), with a reason that says so; these ranges only keep arithmetic
+# far from overflow.
+ExpectedReturn = Annotated[float, Field(ge=-1.0, le=1e6)]
+Volatility = Annotated[float, Field(gt=0.0, le=1e6)]
+Rate = Annotated[float, Field(gt=-1.0, le=1e6)]
+MatrixEntry = Annotated[float, Field(ge=-1e6, le=1e6)]
 
 
 class AssetIn(Strict):
@@ -122,7 +126,7 @@ Matrix = list[list[MatrixEntry]]
 
 
 class MixIn(Strict):
-    version: Identifier
+    version: str
     assets: Annotated[list[AssetIn], Field(min_length=1)]
     correlation: Matrix | None = None
     covariance: Matrix | None = None
@@ -133,6 +137,16 @@ class MixIn(Strict):
 
     @model_validator(mode="after")
     def _one_matrix(self) -> MixIn:
+        try:
+            check_version_name(self.version)
+            check_decimal_rates(
+                [a.expected_return for a in self.assets],
+                [a.volatility for a in self.assets],
+                self.risk_free_rate,
+                self.covariance,
+            )
+        except AllocationError as error:
+            raise at(error.field, error.reason) from None
         if self.correlation is None and self.covariance is None:
             raise at("covariance", "give exactly one of correlation (with volatilities) or covariance")
         if self.correlation is not None and self.covariance is not None:
@@ -170,12 +184,39 @@ class MixOut(BaseModel):
     kkt_residual: float
     cross_checks: list[CrossCheckOut]
     active: bool | None = None
+    state: Literal["published", "active", "retired"] | None = None
+    lifecycle: MixVersionOut | None = None
+    inputs: dict[str, Any] | None = Field(
+        default=None, description="the published assumptions as stored (the canonical form that was hashed)"
+    )
+
+
+class MixVersionOut(BaseModel):
+    """One version's lifecycle; *_by are the key ids that did it."""
+
+    version: str
+    state: Literal["published", "active", "retired"]
+    content_hash: str
+    published_at: str
+    published_by: str | None
+    activated_at: str | None
+    activated_by: str | None
+    retired_at: str | None
+    retired_by: str | None
+
+
+class MixListOut(BaseModel):
+    plan_id: str
+    active_version: str | None
+    versions: list[MixVersionOut]
 
 
 class ActivationOut(BaseModel):
     plan_id: str
     active_version: str
     content_hash: str
+    retired_version: str | None = None
+    mix: MixVersionOut | None = None
 
 
 class FrontierPointOut(BaseModel):

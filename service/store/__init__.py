@@ -16,6 +16,7 @@ from service.store.records import (
     KeyRecord,
     LogBatch,
     LogStream,
+    MixLifecycle,
     MixRecord,
     PlanRecord,
 )
@@ -30,7 +31,10 @@ from service.store.repository import (
     insert_mix,
     insert_plan,
     list_allocations,
-    set_active_version,
+    list_lifecycle,
+    lock_lifecycle,
+    record_activation,
+    record_retirement,
     upsert_key,
 )
 from service.store.writer import ChainWriter
@@ -49,6 +53,7 @@ __all__ = [
     "KeyRecord",
     "LogBatch",
     "LogStream",
+    "MixLifecycle",
     "MixRecord",
     "PlanRecord",
     "get_allocation",
@@ -61,9 +66,12 @@ __all__ = [
     "insert_mix",
     "insert_plan",
     "list_allocations",
+    "list_lifecycle",
+    "lock_lifecycle",
+    "record_activation",
+    "record_retirement",
     "secret_hash",
     "secret_matches",
-    "set_active_version",
     "upsert_key",
     "verify_chain",
 ]

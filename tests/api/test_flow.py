@@ -225,9 +225,9 @@ async def test_every_preference_kind(world: World, new_plan_id: str) -> None:
                         ({"risk_aversion": -1}, "preference.risk_aversion")):
         r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=base | {"preference": pref}, headers=keys["portal"])
         assert_problem(r, 422, field)
-    # An unknown mix version.
+    # An unknown mix version is not the one in force.
     r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=base | {"mix_version": "nope", "preference": {"risk_aversion": 1}}, headers=keys["portal"])
-    assert_problem(r, 404)
+    assert assert_problem(r, 409, "mix_version")["active_version"] == DEMO_MIX["version"]
     v = await world.client.get(f"/v1/plans/{new_plan_id}/audit/verify", headers=keys["committee"])
     assert (v.json()["ok"], v.json()["checked"]) == (True, 5)
 
