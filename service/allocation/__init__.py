@@ -5,6 +5,7 @@ Imports numerics below it; knows nothing of HTTP or databases.
 
 from .disclosures import DISCLOSURES, disclosures_for
 from .errors import AllocationError
+from .estimation import estimate_mix, parse_dates
 from .lifecycle import (
     RESERVED_VERSION_NAMES,
     Activation,
@@ -48,6 +49,8 @@ __all__ = [
     "LifecycleConflict",
     "MixState",
     "check_decimal_rates",
+    "estimate_mix",
+    "parse_dates",
     "check_version_name",
     "plan_activation",
     "plan_retirement",

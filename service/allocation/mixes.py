@@ -16,7 +16,14 @@ from typing import Any
 import numpy as np
 import orjson
 
-from service.numerics import Frontier, MixInputs, Portfolio, SolvedMix, build_inputs, solve_mix
+from service.numerics import (
+    Frontier,
+    MixInputs,
+    Portfolio,
+    SolvedMix,
+    build_inputs,
+    solve_mix,
+)
 
 from .errors import AllocationError
 
@@ -30,6 +37,19 @@ MAX_DECIMAL_RISK_FREE_RATE = 0.5
 _DECIMALS = "rates and volatilities are annual decimals (0.05 = 5 %)"
 
 
+def percent_like(value: float, kind: str) -> str | None:
+    """Why ``value`` (an annual ``expected_return``, ``volatility`` or ``risk_free_rate``) looks
+    like a percentage rather than a decimal, or None when it does not."""
+    limit = {
+        "expected_return": MAX_DECIMAL_RETURN,
+        "volatility": MAX_DECIMAL_VOLATILITY,
+        "risk_free_rate": MAX_DECIMAL_RISK_FREE_RATE,
+    }[kind]
+    if value > limit:
+        return f"{kind.replace('_', ' ')} {value:g} looks like a percentage: {_DECIMALS}"
+    return None
+
+
 def check_decimal_rates(
     expected_returns: Sequence[float],
     volatilities: Sequence[float | None],
@@ -38,21 +58,16 @@ def check_decimal_rates(
 ) -> None:
     """Refuse values that look like percentages; ``field`` names the first one."""
     for i, mu in enumerate(expected_returns):
-        if mu > MAX_DECIMAL_RETURN:
-            raise AllocationError(f"assets[{i}].expected_return", f"{mu:g} looks like a percentage: {_DECIMALS}")
+        if reason := percent_like(mu, "expected_return"):
+            raise AllocationError(f"assets[{i}].expected_return", reason)
     for i, vol in enumerate(volatilities):
-        if vol is not None and vol > MAX_DECIMAL_VOLATILITY:
-            raise AllocationError(f"assets[{i}].volatility", f"{vol:g} looks like a percentage: {_DECIMALS}")
-    if covariance is not None:
-        for i, row in enumerate(covariance):
-            if i < len(row) and row[i] > MAX_DECIMAL_VOLATILITY**2:
-                raise AllocationError(
-                    f"covariance[{i}][{i}]",
-                    f"variance {row[i]:g} is a volatility of {math.sqrt(row[i]):g}, which looks like a "
-                    f"percentage: {_DECIMALS}",
-                )
-    if risk_free_rate > MAX_DECIMAL_RISK_FREE_RATE:
-        raise AllocationError("risk_free_rate", f"{risk_free_rate:g} looks like a percentage: {_DECIMALS}")
+        if vol is not None and (reason := percent_like(vol, "volatility")):
+            raise AllocationError(f"assets[{i}].volatility", reason)
+    for i, row in enumerate(covariance or []):
+        if i < len(row) and row[i] > 0 and (reason := percent_like(math.sqrt(row[i]), "volatility")):
+            raise AllocationError(f"covariance[{i}][{i}]", f"variance {row[i]:g}: {reason}")
+    if reason := percent_like(risk_free_rate, "risk_free_rate"):
+        raise AllocationError("risk_free_rate", reason)
 
 
 def canonical_inputs(

@@ -16,12 +16,12 @@ from starlette.types import ASGIApp, Receive, Scope, Send
 from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
 
-from . import allocations, audit, batch, errors, mixes, operations, plans
+from . import allocations, audit, batch, errors, estimating, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
 from .errors import PROBLEM_MEDIA_TYPE, problem_response
 from .fastpath import AllocationFastPath
 from .metrics import Metrics, MetricsMiddleware
-from .schemas import AllocationIn, BatchIn, MixIn, Problem
+from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
 from .state import AppState
 
 EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
@@ -91,7 +91,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
-    for module in (plans, mixes, batch, allocations, audit, operations):
+    for module in (plans, estimating, mixes, batch, allocations, audit, operations):
         app.include_router(module.router)
     documented = next(r for r in allocations.router.routes if getattr(r, "name", "") == "create_allocation")
     app.add_middleware(AllocationFastPath, state=state, route=documented, body_limit=settings.max_body_bytes)
@@ -122,7 +122,8 @@ def install_openapi(app: FastAPI) -> None:
         components = doc.setdefault("components", {}).setdefault("schemas", {})
         # Models of the bodies that hot routes read themselves (see bodies.py), and the problem shape.
         _, defs = models_json_schema(
-            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation"), (MixIn, "validation")],
+            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation"), (MixIn, "validation"),
+             (EstimateIn, "validation")],
             ref_template="#/components/schemas/{model}",
         )
         for name, schema in defs.get("$defs", {}).items():

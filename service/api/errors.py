@@ -122,7 +122,8 @@ def _location(loc: Sequence[Any]) -> str:
         else:
             # pydantic puts union member names and function-validator tags in loc; they are not fields.
             text = str(p)
-            if text.startswith("function-") or text in {"str", "int", "float", "list[float]"}:
+            # "[key]" marks an error in a mapping's key, which the key before it already names.
+            if text.startswith("function-") or text in {"str", "int", "float", "list[float]", "[key]"}:
                 continue
             out += ("." if out else "") + text
     return out or "body"

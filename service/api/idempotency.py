@@ -19,7 +19,6 @@ import hashlib
 import re
 import time
 from dataclasses import dataclass
-
 from typing import Annotated
 
 from fastapi import Header

@@ -240,6 +240,36 @@ class FrontierOut(BaseModel):
     allocation_line: AllocationLineOut
 
 
+class EstimateIn(Strict):
+    """A return history (simple returns per period, as decimals), one series per asset code."""
+
+    frequency: str = Field(description="daily, weekly, monthly, quarterly or annual")
+    returns: Annotated[dict[Code, list[float | None]], Field(min_length=1)]
+    dates: list[str] | None = Field(default=None, description="ISO dates, one per observation, increasing")
+    covariance_method: str = Field(default="sample", description="sample (unbiased) or shrinkage (Ledoit-Wolf 2004)")
+    expected_returns: str | dict[Code, float] = Field(
+        default="historical", description="historical (annualised means) or one annual decimal per asset code"
+    )
+    risk_free_rate: Rate
+    repair: bool = Field(default=False, description="take the nearest correlation matrix when the estimate is not positive definite")
+
+
+class EstimationOut(BaseModel):
+    observations: int
+    periods_per_year: int
+    covariance_method: str
+    shrinkage_intensity: float | None
+    condition_number: float
+    repaired: bool
+    repair_distance: float | None
+    expected_returns: str
+
+
+class EstimateOut(BaseModel):
+    mix: dict[str, Any] = Field(description="a body for POST .../mixes, without its version")
+    estimation: EstimationOut
+
+
 # ---- allocations ----------------------------------------------------------------------------
 
 

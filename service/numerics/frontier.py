@@ -33,10 +33,10 @@ from scipy.linalg.lapack import dpotri as _potri
 from service.numerics.active_set import BoxProblem, BoxSolution, solve_box_problem
 from service.numerics.closed_form import ClosedForm
 from service.numerics.errors import InputError
+from service.numerics.exact import only_feasible_weights
 from service.numerics.inputs import MixInputs
 from service.numerics.max_return import FIXED, FREE, LOWER, UPPER
 from service.numerics.portfolio import Portfolio, portfolio_from_weights
-from service.numerics.exact import only_feasible_weights
 from service.numerics.warm_start import min_variance_start
 
 __all__ = ["Frontier", "efficient_frontier", "frontier_from_min_variance", "best_sharpe_on_frontier",
