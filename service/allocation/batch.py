@@ -8,7 +8,6 @@ member except where a caller asks for one.
 from __future__ import annotations
 
 from dataclasses import dataclass
-
 import numpy as np
 from scipy.special import ndtri
 

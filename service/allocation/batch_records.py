@@ -14,15 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import orjson
 
-from .batch import (
-    LIMIT_NAMES,
-    MAX_LOSS,
-    RISK_AVERSION,
-    RISK_SCORE,
-    TARGET_VOLATILITY,
-    BatchInput,
-    BatchResult,
-)
+from .batch import LIMIT_NAMES, MAX_LOSS, RISK_AVERSION, RISK_SCORE, TARGET_VOLATILITY, BatchInput, BatchResult
 from .disclosures import DISCLOSURES_VERSION
 from .money import minor_exponent
 from .records import RECORD_FORM

@@ -198,21 +198,43 @@ class MixView:
         )
 
 
-def frontier_document(view: MixView, frontier: Frontier, points: int) -> dict[str, Any]:
+# When a spaced point falls on a labelled one, the label wins (the first kinds are the rarer).
+_KIND_ORDER = {"min_variance": 0, "tangency": 1, "corner": 2, "spaced": 3}
+
+
+def frontier_document(view: MixView, frontier: Frontier, points: int, spacing: str = "return") -> dict[str, Any]:
+    """``points`` frontier portfolios evenly spaced in return or volatility, plus every corner
+    portfolio and the tangency, sorted by expected return, each with its ``kind``."""
     solved = view.solved
     codes = view.codes
-    sharpe = view.solved.tangency.sharpe_ratio
+    inputs = solved.inputs
+    labelled: list[tuple[str, Portfolio]] = [("corner", p) for p in frontier.corners(inputs)]
+    labelled[0] = ("min_variance", labelled[0][1])
+    labelled.append(("tangency", solved.tangency))
+    scale = max(1.0, float(np.max(np.abs(inputs.expected_returns))))
+    every = labelled + [("spaced", p) for p in frontier.sample(points, inputs, spacing)]
+    every.sort(key=lambda kp: (kp[1].expected_return, _KIND_ORDER[kp[0]]))
+    merged: list[tuple[str, Portfolio]] = []
+    for kind, p in every:
+        if merged and abs(p.expected_return - merged[-1][1].expected_return) <= 1e-12 * scale:
+            if _KIND_ORDER[kind] < _KIND_ORDER[merged[-1][0]]:
+                merged[-1] = (kind, p)
+            continue
+        merged.append((kind, p))
+    sharpe = solved.tangency.sharpe_ratio
     return {
         "version": view.version,
         "content_hash": view.content_hash,
+        "spacing": spacing,
         "points": [
             {
+                "kind": kind,
                 "expected_return": p.expected_return,
                 "volatility": p.volatility,
                 "sharpe_ratio": p.sharpe_ratio,
                 "weights": {c: _clean(w) for c, w in zip(codes, p.weights, strict=True)},
             }
-            for p in frontier.sample(points, solved.inputs)
+            for kind, p in merged
         ],
         "tangency": portfolio_document(solved.tangency, codes),
         "min_variance": portfolio_document(solved.min_variance, codes),

@@ -6,8 +6,8 @@ risky + safe == amount and the per-asset amounts add up to the risky amount to t
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
+import math
 from decimal import Decimal, InvalidOperation
 
 import numpy as np

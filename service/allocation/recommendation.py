@@ -11,9 +11,9 @@ from .errors import AllocationError
 from .line import AllocationLine
 from .mixes import MixView
 from .money import format_units, parse_amount, risky_units, split_units
+from .records import RECORD_FORM
 from .policy import Policy
 from .preferences import Preference, choose_risky_fraction
-from .records import RECORD_FORM
 from .routing import route_contribution
 
 MoneyInput = str | int | float

@@ -19,12 +19,7 @@ from starlette.responses import Response
 
 from service.allocation import disclosures_for, line_for
 from service.allocation.batch import LIMIT_NAMES, BatchResult, allocate
-from service.allocation.batch_records import (
-    BatchContext,
-    money_texts,
-    numbers,
-    record_texts,
-)
+from service.allocation.batch_records import BatchContext, money_texts, numbers, record_texts
 from service.store import LogStream
 
 from . import idempotency

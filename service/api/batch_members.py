@@ -18,13 +18,7 @@ from fastapi.exceptions import RequestValidationError
 from pydantic import ValidationError
 
 from service.allocation import AllocationError, account_from_request
-from service.allocation.batch import (
-    MAX_LOSS,
-    RISK_AVERSION,
-    RISK_SCORE,
-    TARGET_VOLATILITY,
-    BatchInput,
-)
+from service.allocation.batch import MAX_LOSS, RISK_AVERSION, RISK_SCORE, TARGET_VOLATILITY, BatchInput
 from service.allocation.money import MAX_MINOR_UNITS, minor_exponent
 
 from .errors import PayloadTooLarge

@@ -113,7 +113,7 @@ def field_error(field: str, reason: str) -> dict[str, str]:
 
 def _location(loc: Sequence[Any]) -> str:
     parts = list(loc)
-    if parts and parts[0] == "body":
+    if parts and parts[0] in ("body", "query", "path"):
         parts = parts[1:]
     out = ""
     for p in parts:

@@ -19,6 +19,7 @@ import hashlib
 import re
 import time
 from dataclasses import dataclass
+
 from typing import Annotated
 
 from fastapi import Header

@@ -2,20 +2,25 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query, Request
 from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
-from starlette.responses import Response
+from starlette.responses import HTMLResponse, Response
 
 from service.allocation import MixState, frontier_document, state_of
-from service.store import MixLifecycle
+from service.store import MixLifecycle, get_allocation
 
+from .allocating import rendered
 from .bodies import parse_body, request_body_schema
+from .charts import frontier_svg
 from .deps import CallerDep, StateDep
 from .errors import NotFound, Unprocessable
+from .negotiation import choose
+from .pictures import frontier_chart, frontier_csv, member_split
 from .responses import AUTHED, json_response, problems
+from .review_page import CONTENT_SECURITY_POLICY, review_html
 from .schemas import (
     ActivationOut,
     FrontierOut,
@@ -24,6 +29,7 @@ from .schemas import (
     MixOut,
     MixVersionOut,
 )
+from .state import AppState
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
 
@@ -129,23 +135,88 @@ def retire_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -
     return json_response(lifecycle_document(entry, MixState.RETIRED))
 
 
+FRONTIER_MEDIA = ("application/json", "text/csv", "image/svg+xml")
+
+
 @router.get(
     "/{version}/frontier", response_model=FrontierOut, operation_id="get_frontier",
-    responses=problems(*AUTHED),
+    responses={
+        200: {"content": {"text/csv": {"schema": {"type": "string"}}, "image/svg+xml": {"schema": {"type": "string"}}},
+              "description": "JSON, a CSV table (Accept: text/csv) or an SVG chart (Accept: image/svg+xml)"},
+        **problems(*AUTHED, 406),
+    },
 )
-def read_frontier(
+async def read_frontier(
     plan_id: str,
     version: str,
+    request: Request,
     caller: CallerDep,
     state: StateDep,
-    points: Annotated[int, Query(ge=2, description="how many evenly spaced frontier points")] = 25,
+    points: Annotated[int, Query(ge=2, description="how many evenly spaced frontier points (corners and the tangency are added)")] = 25,
+    spacing: Annotated[Literal["return", "volatility"], Query(description="space the points evenly in expected return or in volatility")] = "return",
+    allocation_id: Annotated[str | None, Query(max_length=128, description="mark this logged allocation's split")] = None,
 ) -> Response:
     caller.require(plan_id, *READERS)
+    media = choose(request.headers.get("accept"), FRONTIER_MEDIA)
     state.plan(plan_id)
     if points > state.settings.max_frontier_points:
         raise Unprocessable(
             f"points: at most {state.settings.max_frontier_points}",
             errors=[{"field": "points", "reason": f"at most {state.settings.max_frontier_points}"}],
         )
-    view, frontier = state.mixes.frontier(plan_id, version)
-    return json_response(frontier_document(view, frontier, points))
+    # The frontier may still be being solved just after publication: wait off the event loop.
+    view, frontier = await run_in_threadpool(state.mixes.frontier, plan_id, version)
+    member = None if allocation_id is None else _member(state, plan_id, version, allocation_id)
+    if media == "image/svg+xml":
+        chart = frontier_chart(view, frontier, f"Risky mix {version}: efficient frontier", member)
+        svg = await run_in_threadpool(frontier_svg, chart)
+        return Response(svg, media_type="image/svg+xml")
+    doc = frontier_document(view, frontier, points, spacing)
+    if media == "text/csv":
+        return Response(frontier_csv(doc), media_type="text/csv; charset=utf-8",
+                        headers={"Content-Disposition": f'inline; filename="frontier-{version}.csv"'})
+    if member is not None:
+        doc["member_split"] = member
+    return json_response(doc)
+
+
+def _member(state: AppState, plan_id: str, version: str, allocation_id: str) -> dict[str, object]:
+    with state.db.reading() as s:
+        stored = get_allocation(s, plan_id, allocation_id)
+    if stored is None:
+        raise NotFound(f"allocation {allocation_id!r} not found in plan {plan_id!r}")
+    allocation = rendered(state, plan_id, stored)
+    if allocation["mix_version"] != version:
+        reason = f"was made under mix version {allocation['mix_version']!r}, not {version!r}"
+        raise Unprocessable(f"allocation_id: {reason}", errors=[{"field": "allocation_id", "reason": reason}])
+    return member_split(allocation)
+
+
+@router.get(
+    "/{version}/review", operation_id="review_mix", response_class=HTMLResponse,
+    responses={200: {"content": {"text/html": {"schema": {"type": "string"}}},
+                     "description": "one self-contained HTML document for the committee"}, **problems(*AUTHED)},
+)
+async def review_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -> Response:
+    caller.require(plan_id, "committee")
+    plan = state.plan(plan_id)
+    doc = state.mixes.published(plan_id, version)
+    mix_state, entry = state.mixes.state(plan_id, version)
+    view, frontier = await run_in_threadpool(state.mixes.frontier, plan_id, version)
+    chart = frontier_chart(view, frontier, f"Risky mix {version}: efficient frontier")
+    svg = await run_in_threadpool(frontier_svg, chart)
+    # IMPACT: the impact preview against the active version goes here (API.md, "Impact of a
+    # version before activation"); until it is built the page says "not computed".
+    impact = None
+    page = review_html(
+        plan={"plan_id": plan.plan_id, "name": plan.name},
+        mix=doc,
+        inputs=state.mixes.inputs(plan_id, version),
+        lifecycle=lifecycle_document(entry, mix_state),
+        active_version=state.active_version(plan_id),
+        chart_svg=svg,
+        lower=[float(x) for x in view.solved.inputs.lower],
+        upper=[float(x) for x in view.solved.inputs.upper],
+        impact=impact,
+    )
+    return HTMLResponse(page, headers={"Content-Security-Policy": CONTENT_SECURITY_POLICY})

@@ -6,14 +6,7 @@ from fastapi import APIRouter
 from starlette.responses import Response
 
 from service.allocation import build_policy
-from service.store import (
-    Conflict,
-    PlanRecord,
-    get_plan,
-    insert_key,
-    insert_plan,
-    secret_hash,
-)
+from service.store import Conflict, PlanRecord, get_plan, insert_key, insert_plan, secret_hash
 
 from .auth import new_secret
 from .deps import CallerDep, StateDep

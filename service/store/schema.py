@@ -13,8 +13,8 @@ from typing import Any
 
 import orjson
 from sqlalchemy import (
-    CHAR,
     BigInteger,
+    CHAR,
     DateTime,
     Dialect,
     ForeignKey,

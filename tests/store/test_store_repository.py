@@ -22,12 +22,12 @@ from service.store import (
     insert_mix,
     insert_plan,
     list_allocations,
-    secret_hash,
-    secret_matches,
     list_lifecycle,
     lock_lifecycle,
     record_activation,
     record_retirement,
+    secret_hash,
+    secret_matches,
     upsert_key,
 )
 from tests.store.conftest import AppendRows
