@@ -1,9 +1,11 @@
-"""Allocation: a member's preference, a solved risky mix and the plan's policy make a recommendation.
+"""Allocation: members' preferences, a solved risky mix and the plan's policy make recommendations.
 
-Imports numerics below it; knows nothing of HTTP or databases.
+One pipeline (engine.py) answers a single member and a 300,000-member batch alike. Imports
+numerics below it; knows nothing of HTTP or databases.
 """
 
-from .disclosures import DISCLOSURES, disclosures_for
+from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
+from .engine import Allocations, allocate, decide, line_for
 from .errors import AllocationError
 from .estimation import estimate_mix, parse_dates
 from .lifecycle import (
@@ -17,7 +19,10 @@ from .lifecycle import (
     require_in_force,
     state_of,
 )
+from .identifiers import AllocationIds
+from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
 from .line import AllocationLine
+from .members import MEMBER_ID_PATTERN, Members, read_members
 from .mixes import (
     MixView,
     canonical_inputs,
@@ -28,20 +33,10 @@ from .mixes import (
     published_document,
     solve,
 )
-from .money import format_units, minor_exponent, parse_amount, split_units
+from .money import format_units, minor_exponent, money_texts, parse_amount, parse_amounts
 from .policy import Policy, build_policy, check_rates
-from .preferences import (
-    FractionChoice,
-    LossTolerance,
-    Preference,
-    RiskAversion,
-    RiskScore,
-    TargetVolatility,
-    choose_risky_fraction,
-)
-from .recommendation import Account, account_from_request, line_for, recommend
-from .records import RECORD_FORM, record_text, render, render_text
-from .routing import ContributionSplit, route_contribution
+from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
+from .answers import answer_texts
 
 __all__ = [
     "RESERVED_VERSION_NAMES",
@@ -57,38 +52,42 @@ __all__ = [
     "require_in_force",
     "state_of",
     "DISCLOSURES",
+    "DISCLOSURES_VERSION",
+    "MAX_LISTED",
+    "MEMBER_ID_PATTERN",
     "RECORD_FORM",
-    "Account",
     "AllocationError",
+    "AllocationIds",
     "AllocationLine",
-    "ContributionSplit",
-    "FractionChoice",
-    "LossTolerance",
+    "Allocations",
+    "Context",
+    "Decisions",
+    "FieldIssue",
+    "MemberErrors",
+    "Members",
     "MixView",
     "Policy",
-    "Preference",
-    "RiskAversion",
-    "RiskScore",
-    "TargetVolatility",
-    "account_from_request",
+    "allocate",
+    "answer_texts",
+    "batch_field",
     "build_policy",
     "canonical_inputs",
     "check_rates",
-    "choose_risky_fraction",
     "content_hash",
+    "decide",
+    "decisions_from_record",
     "disclosures_for",
     "format_units",
     "frontier_document",
     "is_finite_document",
     "line_for",
     "minor_exponent",
+    "money_texts",
     "parse_amount",
+    "parse_amounts",
     "published_document",
-    "recommend",
-    "record_text",
-    "render",
-    "render_text",
-    "route_contribution",
+    "read_members",
+    "record_texts",
+    "single_field",
     "solve",
-    "split_units",
 ]

@@ -17,10 +17,11 @@ from dataclasses import dataclass
 from enum import StrEnum
 
 from .errors import AllocationError
+from .requests import VERSION_PATTERN
 
 # Path words under /mixes/ that a version name would shadow.
 RESERVED_VERSION_NAMES = frozenset({"current", "estimate"})
-VERSION_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
+_VERSION = re.compile(VERSION_PATTERN)
 
 
 class MixState(StrEnum):
@@ -37,7 +38,7 @@ class LifecycleConflict(AllocationError):
 
 def check_version_name(version: str) -> None:
     """Refuse a name that is not a version name, or one of the path words beside versions."""
-    if not VERSION_PATTERN.fullmatch(version):
+    if not _VERSION.fullmatch(version):
         raise AllocationError(
             "version",
             "a version name is 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit",

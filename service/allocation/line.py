@@ -10,29 +10,28 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+from numpy.typing import NDArray
+
 
 @dataclass(frozen=True)
 class AllocationLine:
     risk_free_rate: float
     tangency_return: float
     tangency_volatility: float
-    borrowing_rate: float | None = None
+    borrowing_rate: float | None = None  # None: the plan does not lend beyond y = 1
 
     @property
     def slope(self) -> float:
         """Sharpe ratio of the tangency mix: the lending segment's slope in (sigma, E[r])."""
         return (self.tangency_return - self.risk_free_rate) / self.tangency_volatility
 
-    @property
-    def borrowing_slope(self) -> float | None:
+    def expected_return(self, y: NDArray[np.float64]) -> NDArray[np.float64]:
+        lending = self.risk_free_rate + y * (self.tangency_return - self.risk_free_rate)
         if self.borrowing_rate is None:
-            return None
-        return (self.tangency_return - self.borrowing_rate) / self.tangency_volatility
+            return lending
+        borrowing = self.tangency_return + (y - 1.0) * (self.tangency_return - self.borrowing_rate)
+        return np.where(y > 1.0, borrowing, lending)
 
-    def expected_return(self, y: float) -> float:
-        if y > 1.0 and self.borrowing_rate is not None:
-            return self.tangency_return + (y - 1.0) * (self.tangency_return - self.borrowing_rate)
-        return self.risk_free_rate + y * (self.tangency_return - self.risk_free_rate)
-
-    def volatility(self, y: float) -> float:
-        return abs(y) * self.tangency_volatility
+    def volatility(self, y: NDArray[np.float64]) -> NDArray[np.float64]:
+        return np.abs(y) * self.tangency_volatility

@@ -2,17 +2,23 @@
 
 Amounts travel as decimal strings; inside they are integers of minor units (cents), so that
 risky + safe == amount and the per-asset amounts add up to the risky amount to the last unit.
+Every function takes whole columns: one member is a column of one.
 """
 
 from __future__ import annotations
 
+import re
 from collections.abc import Sequence
-import math
 from decimal import Decimal, InvalidOperation
+from functools import cache
+from typing import Any
 
 import numpy as np
+import orjson
+from numpy.typing import NDArray
 
-from .errors import AllocationError
+
+Units = NDArray[np.int64]
 
 # ISO 4217 minor-unit exponents that differ from 2 (from the standard's list, common currencies).
 _EXPONENTS = {
@@ -27,80 +33,115 @@ def minor_exponent(currency: str) -> int:
     return _EXPONENTS.get(currency, 2)
 
 
-def parse_amount(field: str, value: str | int | float, currency: str, *, allow_zero: bool = True) -> int:
-    """A decimal string (or number) to integer minor units; refuses what it would have to round."""
-    if isinstance(value, bool):
-        raise AllocationError(field, "must be a decimal string or number, not a boolean")
+def parse_amount(value: Any, currency: str) -> int:
+    """A decimal string (or number) to integer minor units; refuses what it would have to round.
+
+    Raises ValueError with the reason (the caller names the field)."""
+    if isinstance(value, bool) or not isinstance(value, str | int | float):
+        raise ValueError('must be a decimal string such as "1250.00" or a number')
     try:
-        text = repr(value) if isinstance(value, float) else str(value)
-        amount = Decimal(text.strip())
+        amount = Decimal((repr(value) if isinstance(value, float) else str(value)).strip())
     except (InvalidOperation, ValueError):
-        raise AllocationError(field, "is not a decimal number") from None
+        raise ValueError('is not a decimal number such as "1250.00"') from None
     if not amount.is_finite():
-        raise AllocationError(field, "must be a finite amount")
+        raise ValueError("must be a finite amount")
     if amount < 0:
-        raise AllocationError(field, "must not be negative")
-    if amount == 0 and not allow_zero:
-        raise AllocationError(field, "must be greater than zero")
+        raise ValueError("must not be negative")
     exponent = minor_exponent(currency)
     units = amount.scaleb(exponent)
     if units != units.to_integral_value():
-        raise AllocationError(
-            field, f"has more decimal places than {currency} allows ({exponent}); it is not rounded"
-        )
+        raise ValueError(f"has more decimal places than {currency} allows ({exponent}); it is not rounded")
     if units > MAX_MINOR_UNITS:
-        raise AllocationError(field, "is larger than this service accepts")
+        raise ValueError(f"is above {format_units(MAX_MINOR_UNITS, currency)}, the largest amount accepted")
     return int(units)
 
 
+@cache
+def _plain_amount(exponent: int) -> re.Pattern[str]:
+    # At most 15 significant digits, which a double holds exactly: float(text) * 10^exponent,
+    # rounded, is then exactly the integer parse_amount gives (a test holds them equal).
+    digits = rf"\d{{1,{15 - exponent}}}" + (rf"(?:\.\d{{1,{exponent}}})?" if exponent else "")
+    return re.compile(digits)
+
+
+def parse_amounts(values: Sequence[Any], currency: str) -> tuple[Units, list[tuple[int, str]]]:
+    """A column of amounts (None = not given, read as 0) to minor units, and (row, reason) for
+    every value that is not an amount. Plain decimal strings are read in one vectorised pass;
+    anything else goes through parse_amount, the rule itself."""
+    exponent = minor_exponent(currency)
+    plain = _plain_amount(exponent)
+    joined = "\n".join(values) if all(type(v) is str for v in values) else None
+    # One regex over the joined column; the count of separators keeps a value holding one honest.
+    if joined is not None and joined.count("\n") == len(values) - 1 and re.fullmatch(
+        f"(?:{plain.pattern}\n)*{plain.pattern}", joined
+    ):
+        return np.rint(np.array(values, dtype=np.float64) * 10**exponent).astype(np.int64), []
+    units = np.zeros(len(values), dtype=np.int64)
+    problems: list[tuple[int, str]] = []
+    for i, v in enumerate(values):
+        if v is None:
+            continue
+        if type(v) is str and plain.fullmatch(v):
+            units[i] = round(float(v) * 10**exponent)
+            continue
+        try:
+            units[i] = parse_amount(v, currency)
+        except ValueError as error:
+            problems.append((i, str(error)))
+    return units, problems
+
+
 def format_units(units: int, currency: str) -> str:
+    return money_texts(np.array([units], dtype=np.int64), currency)[0]
+
+
+@cache
+def _fraction_texts(exponent: int) -> tuple[str, ...]:
+    return tuple(f"{f:0{exponent}d}" for f in range(10**exponent))
+
+
+def numbers(column: NDArray[Any]) -> list[str]:
+    """orjson's text for every number of a 1-d array (NaN becomes null)."""
+    if column.size == 0:
+        return []
+    text: str = orjson.dumps(column, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+    return text[1:-1].split(",")
+
+
+def money_texts(units: Units, currency: str) -> list[str]:
+    """Decimal strings ("1250.00", "-3.10") of a column of minor units."""
     exponent = minor_exponent(currency)
     if exponent == 0:
-        return str(units)
-    sign = "-" if units < 0 else ""
-    whole, frac = divmod(abs(units), 10**exponent)
-    return f"{sign}{whole}.{frac:0{exponent}d}"
+        return numbers(units)
+    table = _fraction_texts(exponent)
+    whole, frac = np.divmod(np.abs(units), 10**exponent)
+    texts = [w + "." + table[f] for w, f in zip(numbers(whole), frac.tolist(), strict=True)]
+    for i in np.flatnonzero(units < 0).tolist():
+        texts[i] = "-" + texts[i]
+    return texts
 
 
-def split_units(total: int, weights: Sequence[float] | np.ndarray) -> np.ndarray:
-    """Largest-remainder apportionment of `total` units by weights summing to 1.
+def risky_units(total: Units, risky_fraction: NDArray[np.float64]) -> Units:
+    """The risky share of each total, to the nearest unit (half to even); safe is the rest."""
+    return np.rint(risky_fraction * total).astype(np.int64)
+
+
+def split_rows(totals: Units, weights: NDArray[np.float64]) -> Units:
+    """Largest-remainder apportionment of each row's total by weights summing to 1.
 
     Floors every exact share, then hands the units still missing to the largest fractional parts
-    (ties to the earlier asset), so the parts are integers that sum to `total` exactly.
+    (ties to the earlier asset), so each row's parts are integers that sum to its total exactly.
     """
-    if len(weights) <= 64:
-        return np.array(_split_small(total, [float(x) for x in weights]), dtype=np.int64)
-    w = np.asarray(weights, dtype=float)
-    exact = w * total
+    exact = totals[:, None].astype(np.float64) * weights[None, :]
     floors = np.floor(exact)
     parts = floors.astype(np.int64)
-    missing = int(total - int(parts.sum()))
-    if missing:
-        order = np.argsort(-(exact - floors), kind="stable")
-        if missing > 0:
-            parts[order[:missing]] += 1
-        else:
-            parts[order[missing:]] -= 1
+    missing = totals - parts.sum(axis=1)
+    # Rank each asset's remainder within its row (stable: ties go to the earlier asset).
+    order = np.argsort(-(exact - floors), axis=1, kind="stable")
+    ranks = np.empty_like(order)
+    np.put_along_axis(ranks, order, np.broadcast_to(np.arange(weights.size), order.shape), axis=1)
+    parts += ranks < missing[:, None]
+    # A weight sum a hair above 1 can leave units too many: take them from the smallest remainders.
+    parts -= ranks >= weights.size + missing[:, None]
     return parts
 
-
-def risky_units(total: int, risky_fraction: float) -> int:
-    """The risky share of `total`, to the nearest unit (half to even); safe is the rest."""
-    return int(round(risky_fraction * total))
-
-
-def _split_small(total: int, weights: list[float]) -> list[int]:
-    """The same apportionment in plain Python: for a handful of assets numpy's call overhead
-    is most of the cost (this runs once per single allocation)."""
-    exact = [w * total for w in weights]
-    parts = [math.floor(x) for x in exact]
-    missing = total - sum(parts)
-    if missing:
-        order = sorted(range(len(exact)), key=lambda i: -(exact[i] - parts[i]))  # stable: ties to the earlier
-        if missing > 0:
-            for i in order[:missing]:
-                parts[i] += 1
-        else:
-            for i in order[missing:]:
-                parts[i] -= 1
-    return parts

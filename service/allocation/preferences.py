@@ -1,4 +1,4 @@
-"""From a member's stated risk preference to the risky fraction y on the allocation line.
+"""From members' stated risk preferences to risky fractions y on the allocation line, every member at once.
 
 - risk aversion A (utility E[r] - A/2 sigma^2): y = (mu_T - rf) / (A sigma_T^2); above 1 the
   borrowing piece applies, y = max(1, (mu_T - r_b) / (A sigma_T^2)); A = 0 asks for as much risk as
@@ -8,154 +8,152 @@
   P(R_H < -L) <= 1 - c, where over H years R_H ~ N(H E[r](y), H sigma(y)^2), i.e.
   H E[r](y) - z_c sqrt(H) sigma(y) >= -L with z_c the standard normal c-quantile;
 - risk score: the plan's table gives A, then as risk aversion.
-Then the policy band [min_risky_fraction, max_risky_fraction] clips y and names what bound.
+Then the policy band [min_risky_fraction, max_risky_fraction] bounds y and names what bound.
+
+One code path for one member or 300,000: every rule is a numpy expression over columns, and
+branches by preference kind are masks. A member's range problems are reported as `FieldIssue`s,
+every member's at once.
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
-from statistics import NormalDist
 
-from .errors import AllocationError
+import numpy as np
+from numpy.typing import NDArray
+from scipy.special import ndtri
+
+from .issues import FieldIssue
 from .line import AllocationLine
 from .policy import MAX_RISK_AVERSION, Policy
 
+Floats = NDArray[np.float64]
 
-@dataclass(frozen=True)
-class RiskAversion:
-    risk_aversion: float
-
-
-@dataclass(frozen=True)
-class TargetVolatility:
-    target_volatility: float
-
-
-@dataclass(frozen=True)
-class LossTolerance:
-    max_loss: float
-    confidence: float
-    horizon_years: float = 1.0
+# Preference kinds, as stored in `Members.kind`.
+RISK_AVERSION, TARGET_VOLATILITY, MAX_LOSS, RISK_SCORE = 0, 1, 2, 3
+KIND_NAMES = ("risk_aversion", "target_volatility", "max_loss", "risk_score")
+# Bound codes in `Fractions.limited`; LIMIT_NAMES[code] is the policy field (None: no bound).
+LIMIT_NONE, LIMIT_MIN, LIMIT_MAX = 0, 1, 2
+LIMIT_NAMES = (None, "min_risky_fraction", "max_risky_fraction")
+# An annual volatility above 500 % is a typo for a percentage, not a preference.
+MAX_TARGET_VOLATILITY = 5.0
+MAX_HORIZON_YEARS = 100.0
 
 
 @dataclass(frozen=True)
-class RiskScore:
-    risk_score: int
+class PreferenceColumns:
+    """Preferences of n members: `value` is A, s, L or the score by `kind`; `confidence` and
+    `horizon` belong to max_loss (0 and 1 elsewhere)."""
 
-
-Preference = RiskAversion | TargetVolatility | LossTolerance | RiskScore
+    kind: NDArray[np.int8]
+    value: Floats
+    confidence: Floats
+    horizon: Floats
 
 
 @dataclass(frozen=True)
-class FractionChoice:
-    risky_fraction: float
-    # None when the preference asks for unlimited risk (risk aversion 0, a loss bound never reached).
-    unconstrained_risky_fraction: float | None
-    limited_by: str | None
+class Fractions:
+    risky_fraction: Floats
+    # NaN where the preference asks for unlimited risk (A = 0, a loss bound never reached).
+    unconstrained: Floats
+    limited: NDArray[np.int8]
 
 
-def validate_preference(pref: Preference) -> None:
-    """Range checks beyond the schema's types; fields are named as in the request."""
-    if isinstance(pref, RiskAversion):
-        if not math.isfinite(pref.risk_aversion) or pref.risk_aversion < 0:
-            raise AllocationError("preference.risk_aversion", f"must be >= 0, got {pref.risk_aversion}")
-        if pref.risk_aversion > MAX_RISK_AVERSION:
-            raise AllocationError(
-                "preference.risk_aversion", f"{pref.risk_aversion} is above {MAX_RISK_AVERSION}"
-            )
-    elif isinstance(pref, TargetVolatility):
-        if not math.isfinite(pref.target_volatility) or pref.target_volatility < 0:
-            raise AllocationError(
-                "preference.target_volatility", f"must be >= 0, got {pref.target_volatility}"
-            )
-        if pref.target_volatility > 5.0:
-            raise AllocationError(
-                "preference.target_volatility",
-                f"{pref.target_volatility} is not an annual volatility (decimal, 0.12 = 12 %)",
-            )
-    elif isinstance(pref, LossTolerance):
-        if not math.isfinite(pref.max_loss) or pref.max_loss <= 0:
-            raise AllocationError("preference.max_loss", f"must be > 0, got {pref.max_loss}")
-        if pref.max_loss > 1.0:
-            raise AllocationError(
-                "preference.max_loss", f"{pref.max_loss} is a loss above 100 % of the account"
-            )
-        if not 0.5 < pref.confidence < 1.0:
-            raise AllocationError(
-                "preference.confidence", f"must lie strictly between 0.5 and 1, got {pref.confidence}"
-            )
-        if not 0 < pref.horizon_years <= 100:
-            raise AllocationError(
-                "preference.horizon_years", f"must be in (0, 100] years, got {pref.horizon_years}"
-            )
+def _issues(mask: NDArray[np.bool_], field: str, reason: str) -> list[FieldIssue]:
+    return [FieldIssue(int(i), field, reason) for i in np.flatnonzero(mask)]
 
 
-def _from_risk_aversion(a: float, line: AllocationLine, policy: Policy) -> float | None:
-    if a == 0.0:
-        return None
-    variance = line.tangency_volatility**2
-    lending = (line.tangency_return - line.risk_free_rate) / (a * variance)
-    if lending <= 1.0 or not policy.allows_borrowing or line.borrowing_rate is None:
-        return lending
-    borrowing = (line.tangency_return - line.borrowing_rate) / (a * variance)
-    return max(1.0, borrowing)
-
-
-def _from_loss_tolerance(pref: LossTolerance, line: AllocationLine, policy: Policy) -> float | None:
-    h = pref.horizon_years
-    z = NormalDist().inv_cdf(pref.confidence)
-    # On a piece E[r](y) = a + b y: the criterion is y (z sqrt(h) sigma_T - h b) <= L + h a.
-    def largest(intercept: float, excess: float) -> float | None:
-        k = z * math.sqrt(h) * line.tangency_volatility - h * excess
-        room = pref.max_loss + h * intercept
-        if k <= 0.0:
-            return None if room >= 0.0 else -math.inf
-        return room / k
-
-    lending = largest(line.risk_free_rate, line.tangency_return - line.risk_free_rate)
-    if lending is not None and lending < 0.0:
-        raise AllocationError(
-            "preference.max_loss",
-            f"no risky fraction keeps P(loss > {pref.max_loss}) within {1 - pref.confidence:.4g} "
-            f"over {h} years: even the safe holding fails it at a risk-free rate of "
-            f"{line.risk_free_rate}",
-        )
-    if lending is not None and lending <= 1.0:
-        return lending
-    if not policy.allows_borrowing or line.borrowing_rate is None:
-        return lending
-    # Past y = 1 the line's intercept is r_b and its excess mu_T - r_b (continuous at y = 1).
-    return largest(line.borrowing_rate, line.tangency_return - line.borrowing_rate)
-
-
-def choose_risky_fraction(pref: Preference, line: AllocationLine, policy: Policy) -> FractionChoice:
-    validate_preference(pref)
-    wanted: float | None
-    if isinstance(pref, RiskAversion):
-        wanted = _from_risk_aversion(pref.risk_aversion, line, policy)
-    elif isinstance(pref, TargetVolatility):
-        wanted = pref.target_volatility / line.tangency_volatility
-    elif isinstance(pref, LossTolerance):
-        wanted = _from_loss_tolerance(pref, line, policy)
-    else:
+def check_preferences(p: PreferenceColumns, policy: Policy) -> list[FieldIssue]:
+    """Range checks beyond the reader's types, for every member; fields as in the request."""
+    k, v = p.kind, p.value
+    ra, tv, ml, rs = k == RISK_AVERSION, k == TARGET_VOLATILITY, k == MAX_LOSS, k == RISK_SCORE
+    found = _issues(ra & ~((v >= 0) & (v <= MAX_RISK_AVERSION)), "preference.risk_aversion",
+                    f"must lie in [0, {MAX_RISK_AVERSION:g}]")
+    found += _issues(tv & ~((v >= 0) & (v <= MAX_TARGET_VOLATILITY)), "preference.target_volatility",
+                     f"must be an annual volatility in [0, {MAX_TARGET_VOLATILITY:g}] (a decimal: 0.12 = 12 %)")
+    found += _issues(ml & ~((v > 0) & (v <= 1.0)), "preference.max_loss",
+                     "must lie in (0, 1]: a fraction of the account (0.15 = 15 %)")
+    found += _issues(ml & ~((p.confidence > 0.5) & (p.confidence < 1.0)), "preference.confidence",
+                     "must lie strictly between 0.5 and 1")
+    found += _issues(ml & ~((p.horizon > 0) & (p.horizon <= MAX_HORIZON_YEARS)), "preference.horizon_years",
+                     f"must lie in (0, {MAX_HORIZON_YEARS:g}] years")
+    if rs.any():
         if not policy.risk_score_table:
-            raise AllocationError(
-                "preference.risk_score", "this plan has no risk_score_table to map scores"
-            )
-        if pref.risk_score not in policy.risk_score_table:
-            known = ", ".join(str(k) for k in sorted(policy.risk_score_table))
-            raise AllocationError(
-                "preference.risk_score",
-                f"score {pref.risk_score} is not in the plan's risk_score_table (scores: {known})",
-            )
-        wanted = _from_risk_aversion(policy.risk_score_table[pref.risk_score], line, policy)
-    return bound_by_policy(wanted, policy)
+            found += _issues(rs, "preference.risk_score", "this plan has no risk_score_table to map scores")
+        else:
+            known = np.array(sorted(policy.risk_score_table), dtype=float)
+            listed = ", ".join(str(s) for s in sorted(policy.risk_score_table))
+            found += _issues(rs & ~np.isin(v, known), "preference.risk_score",
+                             f"is not a score of the plan's risk_score_table ({listed})")
+    return found
 
 
-def bound_by_policy(wanted: float | None, policy: Policy) -> FractionChoice:
-    if wanted is None or wanted > policy.max_risky_fraction:
-        return FractionChoice(policy.max_risky_fraction, wanted, "max_risky_fraction")
-    if wanted < policy.min_risky_fraction:
-        return FractionChoice(policy.min_risky_fraction, wanted, "min_risky_fraction")
-    return FractionChoice(wanted, wanted, None)
+def _aversion_fraction(a: Floats, line: AllocationLine) -> Floats:
+    variance = line.tangency_volatility**2
+    with np.errstate(divide="ignore"):
+        y = (line.tangency_return - line.risk_free_rate) / (a * variance)
+        if line.borrowing_rate is not None:
+            borrowing = np.maximum(1.0, (line.tangency_return - line.borrowing_rate) / (a * variance))
+            y = np.where(y > 1.0, borrowing, y)
+    return np.where(a == 0.0, np.nan, y)
+
+
+def _loss_fraction(loss: Floats, confidence: Floats, horizon: Floats, line: AllocationLine) -> Floats:
+    """Largest y meeting the criterion; NaN where it never binds, -inf where even y = 0 fails."""
+    z = ndtri(confidence)
+    root_h = np.sqrt(horizon)
+
+    def largest(intercept: float, excess: float) -> Floats:
+        # On a piece E[r](y) = a + b y: the criterion is y (z sqrt(h) sigma_T - h b) <= L + h a.
+        k = z * root_h * line.tangency_volatility - horizon * excess
+        room = loss + horizon * intercept
+        with np.errstate(divide="ignore", invalid="ignore"):
+            y = room / k
+        return np.where(k <= 0.0, np.where(room >= 0.0, np.nan, -np.inf), y)
+
+    y = largest(line.risk_free_rate, line.tangency_return - line.risk_free_rate)
+    if line.borrowing_rate is not None:
+        # Past y = 1 the line's intercept is r_b and its excess mu_T - r_b (continuous at y = 1).
+        borrowing = largest(line.borrowing_rate, line.tangency_return - line.borrowing_rate)
+        y = np.where(np.isnan(y) | (y > 1.0), borrowing, y)
+    return y
+
+
+def wanted_fractions(p: PreferenceColumns, line: AllocationLine, policy: Policy) -> tuple[Floats, list[FieldIssue]]:
+    """Each member's y before the policy band (NaN = unlimited), and members no y can satisfy."""
+    k = p.kind
+    wanted = np.full(k.shape[0], np.nan)
+    by_aversion = (k == RISK_AVERSION) | (k == RISK_SCORE)
+    if by_aversion.any():
+        a = p.value[by_aversion]
+        scored = k[by_aversion] == RISK_SCORE
+        if scored.any():
+            table = policy.risk_score_table
+            keys = np.array(sorted(table), dtype=float)
+            values = np.array([table[int(s)] for s in keys.tolist()], dtype=float)
+            a = np.where(scored, values[np.searchsorted(keys, a).clip(0, max(len(keys) - 1, 0))], a)
+        wanted[by_aversion] = _aversion_fraction(a, line)
+    tv = k == TARGET_VOLATILITY
+    if tv.any():
+        wanted[tv] = p.value[tv] / line.tangency_volatility
+    ml = k == MAX_LOSS
+    issues: list[FieldIssue] = []
+    if ml.any():
+        wanted[ml] = _loss_fraction(p.value[ml], p.confidence[ml], p.horizon[ml], line)
+        impossible = np.zeros(k.shape[0], dtype=bool)
+        impossible[ml] = np.isneginf(wanted[ml])
+        issues = _issues(
+            impossible, "preference.max_loss",
+            "no risky fraction keeps the chance of this loss within 1 - confidence over the horizon: "
+            f"even the safe holding fails it at the mix's risk-free rate of {line.risk_free_rate}",
+        )
+    return wanted, issues
+
+
+def bound_by_policy(wanted: Floats, policy: Policy) -> Fractions:
+    lo, hi = policy.min_risky_fraction, policy.max_risky_fraction
+    over = np.isnan(wanted) | (wanted > hi)
+    under = ~over & (wanted < lo)
+    y = np.where(over, hi, np.where(under, lo, wanted))
+    limited = np.where(over, LIMIT_MAX, np.where(under, LIMIT_MIN, LIMIT_NONE)).astype(np.int8)
+    return Fractions(y, wanted, limited)

@@ -1,118 +1,138 @@
-"""The rules of answering and logging allocations, between the HTTP routes and the layers below."""
+"""Answering and logging allocations: the one path both allocation routes take.
+
+A single POST is a batch of one: the body is read into an `AllocationRequest` (one member, or
+the batch's members), the allocation pipeline decides every member at once, and the records go
+to the log writer before any answer leaves. Small requests are one job for the writer (group-
+committed with other requests); a large batch is streamed to it in chunks inside one
+transaction, so that writing record text, hashing and the database's own work overlap.
+"""
 
 from __future__ import annotations
 
-import secrets
-import threading
+import asyncio
 from datetime import UTC, datetime
+from functools import partial
 from typing import Any
 
 import orjson
+from starlette.concurrency import run_in_threadpool
+from starlette.responses import Response
 
 from service.allocation import (
-    LossTolerance,
-    MixView,
-    Preference,
-    RiskAversion,
-    RiskScore,
-    TargetVolatility,
-    account_from_request,
-    recommend,
-    record_text,
-    render,
+    AllocationIds,
+    Allocations,
+    answer_texts,
+    allocate,
+    decisions_from_record,
 )
-from service.store import IdempotencyCompletion, LogBatch
+from service.allocation.issues import FieldIssue, MemberErrors, single_field
+from service.allocation.requests import read_batch, read_single
+from service.store import LogBatch, LogStream
 
-from .schemas import AllocationIn, PreferenceIn
-from .state import AppState, PlanView
+from . import idempotency
+from .auth import Caller
+from .responses import raw_json_response
+from .state import AppState
 
+# Rows handed to the log writer at a time: big enough that each chunk is a few C calls, small
+# enough that the writer starts inserting almost at once. Requests up to this size are one job.
+CHUNK = 8192
 
-class _AllocationIds:
-    """al_ + 80 random bits per process + a 48-bit counter: unique across replicas, ordered within
-    one (so the log's unique index grows at its end), and no system call per allocation. A batch
-    takes a block of consecutive counter values."""
-
-    def __init__(self) -> None:
-        self._stem = secrets.token_hex(10)
-        self._counter = int.from_bytes(secrets.token_bytes(2), "big") << 32
-        self._lock = threading.Lock()
-
-    def _take(self, n: int) -> int:
-        with self._lock:
-            first = self._counter
-            self._counter += n
-        return first
-
-    def __call__(self) -> str:
-        return f"al_{self._stem}{self._take(1):012x}"
-
-    def block(self, n: int) -> list[str]:
-        first, stem = self._take(n), self._stem
-        return [f"al_{stem}{i:012x}" for i in range(first, first + n)]
-
-
-new_allocation_id = _AllocationIds()
+allocation_ids = AllocationIds()
 
 
 def utc_now_text() -> str:
     return datetime.now(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
-def preference_of(p: PreferenceIn) -> tuple[Preference, dict[str, float | int]]:
-    if p.risk_aversion is not None:
-        return RiskAversion(p.risk_aversion), {"risk_aversion": p.risk_aversion}
-    if p.target_volatility is not None:
-        return TargetVolatility(p.target_volatility), {"target_volatility": p.target_volatility}
-    if p.max_loss is not None:
-        assert p.confidence is not None
-        horizon = 1.0 if p.horizon_years is None else p.horizon_years
-        return (
-            LossTolerance(p.max_loss, p.confidence, horizon),
-            {"max_loss": p.max_loss, "confidence": p.confidence, "horizon_years": horizon},
-        )
-    assert p.risk_score is not None
-    return RiskScore(p.risk_score), {"risk_score": p.risk_score}
+def _json(raw: bytes) -> Any:
+    try:
+        return orjson.loads(raw)
+    except orjson.JSONDecodeError as error:
+        issue = FieldIssue(0, "body", f"is not valid JSON: {error.msg} at character {error.pos}")
+        raise MemberErrors([issue], single_field) from None
 
 
-def answer(state: AppState, plan: PlanView, body: AllocationIn, *, created_at: str) -> tuple[dict[str, Any], MixView]:
-    """The allocation record for one member (not yet logged), and the mix it was made with."""
-    view = state.mixes.view_in_force(plan.plan_id, body.mix_version)
-    preference, preference_doc = preference_of(body.preference)
-    holdings = None if body.holdings is None else {"risky": body.holdings.risky, "safe": body.holdings.safe}
-    account = account_from_request(plan.currency, body.amount, holdings, body.contribution)
-    record = recommend(
-        allocation_id=new_allocation_id(),
-        plan_id=plan.plan_id,
-        member_id=body.member_id,
-        created_at=created_at,
-        currency=plan.currency,
-        view=view,
-        policy=plan.policy,
-        preference=preference,
-        preference_document=preference_doc,
-        account=account,
-    )
-    return record, view
-
-
-def log_batch(
-    plan_id: str,
-    mix_version: str,
-    created_at: str,
-    records: list[dict[str, Any]],
-    completes: IdempotencyCompletion | None = None,
-) -> LogBatch:
-    return LogBatch(
+def prepare(state: AppState, plan_id: str, raw: bytes, *, batch: bool) -> Allocations:
+    """Read, check and decide every member; nothing is written (a refused request logs nothing)."""
+    plan = state.plan(plan_id)
+    doc = _json(raw)
+    request = read_batch(doc, state.settings.batch_limit) if batch else read_single(doc)
+    return allocate(
+        request.members,
         plan_id=plan_id,
-        mix_version=mix_version,
-        created_at=created_at,
-        allocation_ids=[r["allocation_id"] for r in records],
-        member_ids=[r["member_id"] for r in records],
-        bodies=[record_text(r).decode() for r in records],
-        completes=completes,
+        currency=plan.currency,
+        policy=plan.policy,
+        view=state.mixes.view_in_force(plan_id, request.mix_version),
+        created_at=utc_now_text(),
+        new_ids=allocation_ids.block,
+        locate=request.locate,
     )
 
 
-def rendered(state: AppState, plan_id: str, stored: str) -> dict[str, Any]:
+def answer_body(prepared: Allocations, *, batch: bool) -> bytes:
+    if not batch:
+        return prepared.answers(inline_disclosures=True)[0].encode()
+    parts = [prepared.batch_head()]
+    for start in range(0, prepared.size, CHUNK):
+        texts = prepared.answers(slice(start, start + CHUNK), inline_disclosures=False)
+        parts.append((("," if start else "") + ",".join(texts)).encode())
+    parts.append(b"]}")
+    return b"".join(parts)
+
+
+def _feed(prepared: Allocations, stream: LogStream, owned: idempotency.Claim | None) -> bytes:
+    """Put the records into the stream chunk by chunk, then build the answer (the writer inserts
+    meanwhile: the driver releases the GIL inside the database calls)."""
+    try:
+        d = prepared.decisions
+        for start in range(0, prepared.size, CHUNK):
+            rows = slice(start, start + CHUNK)
+            stream.put(d.allocation_ids[rows], d.member_ids[rows], prepared.records(rows))
+        payload = answer_body(prepared, batch=True)
+        stream.finish(None if owned is None else owned.completion(201, payload))
+        return payload
+    except BaseException as error:
+        stream.fail(error)
+        raise
+
+
+async def allocate_and_log(
+    state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None, *, batch: bool
+) -> Response:
+    caller.require(plan_id, "portal")
+    work = partial(prepare, state, plan_id, raw, batch=batch)
+    # A single member takes microseconds; a batch's reading and rules are CPU work off the loop.
+    prepared = await run_in_threadpool(work) if batch else work()
+    owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
+    if isinstance(owned, Response):
+        return owned
+    ctx, d = prepared.context, prepared.decisions
+    try:
+        if prepared.size <= CHUNK:
+            payload = answer_body(prepared, batch=batch)
+            job = LogBatch(
+                ctx.plan_id, ctx.mix_version, ctx.created_at, d.allocation_ids, d.member_ids, prepared.records(),
+                None if owned is None else owned.completion(201, payload),
+            )
+            # The answer goes out only once its log rows are committed: no unlogged recommendation.
+            await asyncio.wrap_future(state.db.writer.submit(job))
+        else:
+            stream = LogStream(ctx.plan_id, ctx.mix_version, ctx.created_at, prepared.size)
+            committed = state.db.writer.submit_stream(stream)
+            payload = await run_in_threadpool(_feed, prepared, stream, owned)
+            await asyncio.wrap_future(committed)
+    except BaseException:
+        if owned is not None:
+            await idempotency.give_up(state, owned)
+        raise
+    state.metrics.allocations.labels(plan_id).inc(prepared.size)
+    headers = None if batch else {"Location": f"/v1/plans/{plan_id}/allocations/{d.allocation_ids[0]}"}
+    return raw_json_response(payload, 201, headers=headers)
+
+
+def rendered(state: AppState, plan_id: str, stored: str) -> bytes:
+    """A logged record's answer, by the same renderer as at the time it was given."""
     record = orjson.loads(stored)
-    return render(record, state.mixes.view(plan_id, record["mix_version"]).codes)
+    ctx, d = decisions_from_record(record, state.mixes.view(plan_id, record["mix_version"]).codes)
+    return answer_texts(ctx, d, inline_disclosures=True)[0].encode()

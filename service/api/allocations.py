@@ -1,67 +1,55 @@
-"""Allocations (portal): answer one member, read one back, list a member's. HTTP only."""
+"""Allocations (portal): answer one member or a whole membership, read answers back. HTTP only."""
 
 from __future__ import annotations
 
-import asyncio
 from typing import Annotated
 
 import orjson
 from fastapi import APIRouter, Query, Request
 from starlette.responses import Response
 
-from service.allocation import render
 from service.store import get_allocation, list_allocations
 
 from . import idempotency
-from .allocating import answer, log_batch, rendered, utc_now_text
-from .auth import Caller
-from .bodies import parse_body, request_body_schema
+from .allocating import allocate_and_log, rendered
 from .deps import CallerDep, StateDep
 from .errors import NotFound
-from .responses import AUTHED, json_response, problems, raw_json_response
-from .schemas import AllocationIn, AllocationListOut, AllocationOut
-from .state import AppState
+from .responses import AUTHED, problems, raw_json_response
+from .schemas import AllocationIn, AllocationListOut, AllocationOut, BatchIn, BatchOut
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/allocations", tags=["allocations"])
 
 READERS = ("portal",)
 
 
+def _body(name: str) -> dict[str, object]:
+    """openapi_extra for a route that reads its own body (the allocation reader is strict JSON)."""
+    return {
+        "requestBody": {
+            "required": True,
+            "content": {"application/json": {"schema": {"$ref": f"#/components/schemas/{name}"}}},
+        }
+    }
+
+
 @router.post(
     "", status_code=201, response_model=AllocationOut, operation_id="create_allocation",
-    responses=problems(400, *AUTHED, 409), openapi_extra=request_body_schema("AllocationIn"),
+    responses=problems(400, *AUTHED, 409, 413), openapi_extra=_body("AllocationIn"),
 )
 async def create_allocation(
     plan_id: str, request: Request, caller: CallerDep, state: StateDep, idempotency_key: idempotency.KeyHeader = None
 ) -> Response:
-    return await allocate_one(state, caller, plan_id, await request.body(), idempotency_key)
+    return await allocate_and_log(state, caller, plan_id, await request.body(), idempotency_key, batch=False)
 
 
-async def allocate_one(state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None) -> Response:
-    """One member's allocation, logged before it is answered. Shared by the route above and the
-    fast path (fastpath.py), which calls it without FastAPI's routing and dependency work."""
-    caller.require(plan_id, "portal")
-    plan = state.plan(plan_id)
-    body = parse_body(AllocationIn, raw)
-    owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
-    if isinstance(owned, Response):
-        return owned
-    try:
-        created_at = utc_now_text()
-        record, view = answer(state, plan, body, created_at=created_at)
-        doc = render(record, view.codes)
-        payload = orjson.dumps(doc)
-        completes = None if owned is None else owned.completion(201, payload)
-        # The answer goes out only once its log row is committed: no unlogged recommendation exists.
-        await asyncio.wrap_future(
-            state.db.writer.submit(log_batch(plan_id, body.mix_version, created_at, [record], completes))
-        )
-    except BaseException:
-        if owned is not None:
-            await idempotency.give_up(state, owned)
-        raise
-    state.metrics.allocations.labels(plan_id).inc()
-    return raw_json_response(payload, 201, headers={"Location": f"/v1/plans/{plan_id}/allocations/{doc['allocation_id']}"})
+@router.post(
+    "/batch", status_code=201, response_model=BatchOut, operation_id="create_allocation_batch",
+    responses=problems(400, *AUTHED, 409, 413), openapi_extra=_body("BatchIn"),
+)
+async def create_allocation_batch(
+    plan_id: str, request: Request, caller: CallerDep, state: StateDep, idempotency_key: idempotency.KeyHeader = None
+) -> Response:
+    return await allocate_and_log(state, caller, plan_id, await request.body(), idempotency_key, batch=True)
 
 
 @router.get(
@@ -74,7 +62,7 @@ def read_allocation(plan_id: str, allocation_id: str, caller: CallerDep, state: 
         body = get_allocation(s, plan_id, allocation_id)
     if body is None:
         raise NotFound(f"allocation {allocation_id!r} not found in plan {plan_id!r}")
-    return json_response(rendered(state, plan_id, body))
+    return raw_json_response(rendered(state, plan_id, body))
 
 
 @router.get("", response_model=AllocationListOut, operation_id="list_allocations", responses=problems(*AUTHED))
@@ -89,6 +77,6 @@ def list_member_allocations(
     state.plan(plan_id)
     with state.db.reading() as s:
         bodies = list_allocations(s, plan_id, member_id, limit=limit)
-    docs = [rendered(state, plan_id, b) for b in bodies]
-    return json_response({"plan_id": plan_id, "member_id": member_id, "count": len(docs), "allocations": docs})
+    head = orjson.dumps({"plan_id": plan_id, "member_id": member_id, "count": len(bodies)})[:-1] + b',"allocations":['
+    return raw_json_response(head + b",".join(rendered(state, plan_id, b) for b in bodies) + b"]}")
 

@@ -11,15 +11,15 @@ from typing import Any
 
 from fastapi import FastAPI
 from pydantic.json_schema import models_json_schema
-from starlette.types import ASGIApp, Receive, Scope, Send
+from starlette.responses import Response
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
 
-from . import allocations, audit, batch, errors, estimating, mixes, operations, plans
+from . import allocations, audit, errors, estimating, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
-from .errors import PROBLEM_MEDIA_TYPE, problem_response
-from .fastpath import AllocationFastPath
+from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
 from .metrics import Metrics, MetricsMiddleware
 from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
 from .state import AppState
@@ -28,24 +28,59 @@ EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
 
 
 class BodyLimit:
-    """Refuse an oversized body from its Content-Length before reading a byte of it."""
+    """Refuse a request body over `limit` bytes with 413, on every route.
+
+    An oversized Content-Length is refused before a byte is read; otherwise the bytes actually
+    received are counted (chunked bodies have no Content-Length), and once they pass the limit
+    the application's reading stops and whatever it would have answered is replaced by the 413.
+    """
 
     def __init__(self, app: ASGIApp, limit: int) -> None:
         self.app = app
         self.limit = limit
 
+    def _refusal(self, size: str) -> Response:
+        return problem_response(
+            413, "Payload too large", f"request body of {size} is over the limit of {self.limit} bytes",
+            slug="payload-too-large",
+        )
+
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] == "http":
-            for name, value in scope.get("headers", ()):
-                if name == b"content-length" and value.isdigit() and int(value) > self.limit:
-                    response = problem_response(
-                        413, "Payload too large",
-                        f"request body of {int(value)} bytes is over the limit of {self.limit}",
-                        slug="payload-too-large",
-                    )
-                    await response(scope, receive, send)
-                    return
-        await self.app(scope, receive, send)
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        for name, value in scope.get("headers", ()):
+            if name == b"content-length" and value.isdigit() and int(value) > self.limit:
+                await self._refusal(f"{int(value)} bytes")(scope, receive, send)
+                return
+        received = 0
+        over = False
+        started = False
+
+        async def counted() -> Message:
+            nonlocal received, over
+            message = await receive()
+            if message["type"] == "http.request":
+                received += len(message.get("body", b""))
+                if received > self.limit:
+                    over = True
+                    raise PayloadTooLarge(f"request body over the limit of {self.limit} bytes")
+            return message
+
+        async def guarded(message: Message) -> None:
+            nonlocal started
+            if over:
+                return  # the application's own answer to the interrupted read is dropped
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, counted, guarded)
+        except PayloadTooLarge:
+            if not over:
+                raise
+        if over and not started:
+            await self._refusal("more bytes")(scope, receive, send)
 
 
 def bootstrap(state: AppState) -> None:
@@ -91,10 +126,8 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
-    for module in (plans, estimating, mixes, batch, allocations, audit, operations):
+    for module in (plans, estimating, mixes, allocations, audit, operations):
         app.include_router(module.router)
-    documented = next(r for r in allocations.router.routes if getattr(r, "name", "") == "create_allocation")
-    app.add_middleware(AllocationFastPath, state=state, route=documented, body_limit=settings.max_body_bytes)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     install_openapi(app)

@@ -28,7 +28,8 @@ from fastapi.exceptions import RequestValidationError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
-from service.allocation import AllocationError, LifecycleConflict
+from service.allocation import AllocationError, LifecycleConflict, MemberErrors
+from service.allocation.requests import TooManyMembers
 from service.numerics import InputError
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
@@ -152,8 +153,7 @@ def validation_errors(exc: RequestValidationError) -> list[dict[str, str]]:
 
 
 def response_for(exc: BaseException, path: str, method: str = "") -> Response:
-    """The problem response for any exception: the one mapping both the routes and the
-    allocation fast path (fastpath.py) use."""
+    """The problem response for any exception (the one mapping every route uses)."""
     if isinstance(exc, ProblemError):
         return problem_response(
             exc.status, exc.title, exc.detail, slug=exc.slug, errors=exc.errors, headers=exc.headers,
@@ -164,6 +164,23 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
         return problem_response(
             409, "Conflict", f"{exc.field}: {exc.reason}", slug=slug, errors=[field_error(exc.field, exc.reason)],
             instance=path, extra={"active_version": exc.active_version},
+        )
+    if isinstance(exc, MemberErrors):
+        errors = [field_error(field, reason) for field, reason in exc.listed]
+        first = f"{errors[0]['field']}: {errors[0]['reason']}"
+        if exc.count == 1:
+            detail = first
+        else:
+            shown = f"; {exc.count - len(errors)} more not listed" if exc.count > len(errors) else ""
+            detail = f"{exc.count} problems in {exc.members} member(s){shown}; the first: {first}"
+        body_extra = {"error_count": exc.count}
+        return problem_response(
+            422, "Invalid request", detail, slug="validation", errors=errors, instance=path, extra=body_extra,
+        )
+    if isinstance(exc, TooManyMembers):
+        return problem_response(
+            413, "Payload too large", f"{exc.field}: {exc.reason}", slug="payload-too-large",
+            errors=[field_error(exc.field, exc.reason)], instance=path,
         )
     if isinstance(exc, AllocationError | InputError):
         return problem_response(

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
+import orjson
 from fastapi import APIRouter, Query, Request
 from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
@@ -185,7 +186,7 @@ def _member(state: AppState, plan_id: str, version: str, allocation_id: str) -> 
         stored = get_allocation(s, plan_id, allocation_id)
     if stored is None:
         raise NotFound(f"allocation {allocation_id!r} not found in plan {plan_id!r}")
-    allocation = rendered(state, plan_id, stored)
+    allocation = orjson.loads(rendered(state, plan_id, stored))
     if allocation["mix_version"] != version:
         reason = f"was made under mix version {allocation['mix_version']!r}, not {version!r}"
         raise Unprocessable(f"allocation_id: {reason}", errors=[{"field": "allocation_id", "reason": reason}])

@@ -19,7 +19,13 @@ from pydantic import (
     model_validator,
 )
 
-from service.allocation import AllocationError, check_decimal_rates, check_version_name
+from service.allocation import (
+    MEMBER_ID_PATTERN,
+    AllocationError,
+    check_decimal_rates,
+    check_version_name,
+)
+from service.allocation.requests import VERSION_PATTERN
 
 # Separates a sub-field from the reason in a model validator's message (see errors.validation_errors).
 FIELD_MARK = "\x1f"
@@ -38,11 +44,9 @@ def _money(value: Any) -> str | int | float:
     return value
 
 Code = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$")]
-IDENTIFIER_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$"
+IDENTIFIER_PATTERN = f"^{VERSION_PATTERN}$"
 Identifier = Annotated[str, StringConstraints(pattern=IDENTIFIER_PATTERN)]
-# Printable ASCII without space, quote or backslash: ids go into log records unescaped.
-MEMBER_ID_PATTERN = r"^[!#-\[\]-~]{1,128}$"
-MemberId = Annotated[str, StringConstraints(min_length=1, max_length=128, pattern=MEMBER_ID_PATTERN)]
+MemberId = Annotated[str, StringConstraints(min_length=1, max_length=128, pattern=f"^{MEMBER_ID_PATTERN}$")]
 Money = Annotated[
     str | int | float,
     PlainValidator(_money),
@@ -334,7 +338,7 @@ class MoneySplitOut(BaseModel):
     safe: str
 
 
-class AllocationOut(BaseModel):
+class _AnswerFields(BaseModel):
     allocation_id: str
     plan_id: str
     member_id: str
@@ -351,7 +355,7 @@ class AllocationOut(BaseModel):
     by_asset: dict[str, str]
     expected_return: float
     volatility: float
-    disclosures: list[str]
+    disclosures_version: str
     created_at: str
     holdings: MoneySplitOut | None = None
     contribution: str | None = None
@@ -359,14 +363,12 @@ class AllocationOut(BaseModel):
     after_contribution: MoneySplitOut | None = None
 
 
-class BatchResultOut(BaseModel):
-    allocation_id: str
-    member_id: str
-    risky_fraction: float
-    unconstrained_risky_fraction: float | None
-    limited_by: str | None
-    amounts: MoneySplitOut
-    contribution_split: MoneySplitOut | None = None
+class AllocationOut(_AnswerFields):
+    disclosures: list[str]
+
+
+class BatchResultOut(_AnswerFields):
+    """Every field of a single answer; the disclosure texts are given once, at the top of the batch."""
 
 
 class BatchOut(BaseModel):
@@ -375,6 +377,7 @@ class BatchOut(BaseModel):
     mix_content_hash: str
     created_at: str
     count: int
+    disclosures_version: str
     disclosures: list[str]
     results: list[BatchResultOut]
 

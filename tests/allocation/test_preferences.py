@@ -1,4 +1,4 @@
-"""Risky fraction from each preference, checked against closed forms and scipy computed here."""
+"""Risky fraction from each preference (the pipeline's rules), checked against closed forms and scipy computed here."""
 
 from __future__ import annotations
 
@@ -9,16 +9,9 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy import optimize, stats
 
-from service.allocation import (
-    AllocationError,
-    AllocationLine,
-    LossTolerance,
-    RiskAversion,
-    RiskScore,
-    TargetVolatility,
-    build_policy,
-    choose_risky_fraction,
-)
+from service.allocation import AllocationError, AllocationLine, build_policy
+
+from .one_member import aversion, choose, loss_tolerance, score, target
 
 LINE = AllocationLine(risk_free_rate=0.03, tangency_return=0.08, tangency_volatility=0.16)
 NO_LEVERAGE = build_policy()
@@ -37,14 +30,14 @@ def test_textbook_risk_aversion_example() -> None:
     # Bodie, Kane & Marcus, Investments, ch. 6 (from memory): E(r_P) = 15 %, sigma_P = 22 %,
     # rf = 7 %, A = 4 give y* = 0.08 / (4 x 0.22^2) = 0.41.
     line = AllocationLine(0.07, 0.15, 0.22)
-    choice = choose_risky_fraction(RiskAversion(4.0), line, NO_LEVERAGE)
+    choice = choose(aversion(4.0), line, NO_LEVERAGE)
     assert_allclose(choice.risky_fraction, 0.41, atol=0.005)
     assert choice.limited_by is None
 
 
 @pytest.mark.parametrize("a", [0.5, 1.0, 2.0, 4.0, 10.0, 50.0])
 def test_risk_aversion_matches_closed_form_and_scipy(a: float) -> None:
-    choice = choose_risky_fraction(RiskAversion(a), LINE, build_policy(max_risky_fraction=3.0, borrowing_rate=0.03))
+    choice = choose(aversion(a), LINE, build_policy(max_risky_fraction=3.0, borrowing_rate=0.03))
     # Closed form: first-order condition of U = E - A/2 sigma^2 on a straight line (rf = r_b here).
     assert_allclose(choice.unconstrained_risky_fraction, 0.05 / (a * 0.16**2), rtol=1e-12)
     # scipy reference on the same utility.
@@ -52,17 +45,17 @@ def test_risk_aversion_matches_closed_form_and_scipy(a: float) -> None:
 
 
 def test_risk_aversion_zero_takes_the_policy_maximum() -> None:
-    choice = choose_risky_fraction(RiskAversion(0.0), LINE, NO_LEVERAGE)
+    choice = choose(aversion(0.0), LINE, NO_LEVERAGE)
     assert (choice.risky_fraction, choice.unconstrained_risky_fraction, choice.limited_by) == (
         1.0, None, "max_risky_fraction")
 
 
 def test_policy_band_clips_and_names_the_bound() -> None:
     policy = build_policy(min_risky_fraction=0.2, max_risky_fraction=0.7)
-    low = choose_risky_fraction(RiskAversion(100.0), LINE, policy)   # closed form 0.0195 < 0.2
+    low = choose(aversion(100.0), LINE, policy)   # closed form 0.0195 < 0.2
     assert (low.risky_fraction, low.limited_by) == (0.2, "min_risky_fraction")
     assert_allclose(low.unconstrained_risky_fraction, 0.05 / (100 * 0.0256), rtol=1e-12)
-    high = choose_risky_fraction(RiskAversion(1.0), LINE, policy)    # closed form 1.95 > 0.7
+    high = choose(aversion(1.0), LINE, policy)    # closed form 1.95 > 0.7
     assert (high.risky_fraction, high.limited_by) == (0.7, "max_risky_fraction")
 
 
@@ -73,25 +66,25 @@ class TestLeverageKink:
 
     @pytest.mark.parametrize("a", [0.6, 0.8, 1.0, 1.2, 1.5, 1.9, 2.5, 4.0])
     def test_kinked_line_matches_scipy(self, a: float) -> None:
-        choice = choose_risky_fraction(RiskAversion(a), self.LINE_B, self.BORROW)
+        choice = choose(aversion(a), self.LINE_B, self.BORROW)
         assert_allclose(choice.risky_fraction, utility_argmax(self.LINE_B, a, 2.0), atol=1e-6)
 
     def test_thresholds(self) -> None:
         s2 = 0.16**2
         # Lending answer exactly 1 at A = (mu - rf)/s^2; borrowing answer 1 at A = (mu - r_b)/s^2.
         a_lend, a_borrow = 0.05 / s2, 0.03 / s2
-        assert_allclose(choose_risky_fraction(RiskAversion(a_lend), self.LINE_B, self.BORROW).risky_fraction, 1.0, rtol=1e-12)
+        assert_allclose(choose(aversion(a_lend), self.LINE_B, self.BORROW).risky_fraction, 1.0, rtol=1e-12)
         # Between the two thresholds the member sits at the kink y = 1.
-        mid = choose_risky_fraction(RiskAversion((a_lend + a_borrow) / 2), self.LINE_B, self.BORROW)
+        mid = choose(aversion((a_lend + a_borrow) / 2), self.LINE_B, self.BORROW)
         assert mid.risky_fraction == 1.0 and mid.limited_by is None
         # Below a_borrow the borrowing piece's own optimum applies, until the policy cap binds.
-        low = choose_risky_fraction(RiskAversion(a_borrow * 0.8), self.LINE_B, self.BORROW)
+        low = choose(aversion(a_borrow * 0.8), self.LINE_B, self.BORROW)
         assert_allclose(low.risky_fraction, 0.03 / (a_borrow * 0.8 * s2), rtol=1e-12)
-        capped = choose_risky_fraction(RiskAversion(a_borrow * 0.3), self.LINE_B, self.BORROW)
+        capped = choose(aversion(a_borrow * 0.3), self.LINE_B, self.BORROW)
         assert (capped.risky_fraction, capped.limited_by) == (2.0, "max_risky_fraction")
 
     def test_no_borrowing_policy_caps_at_one(self) -> None:
-        choice = choose_risky_fraction(RiskAversion(0.5), LINE, NO_LEVERAGE)
+        choice = choose(aversion(0.5), LINE, NO_LEVERAGE)
         assert (choice.risky_fraction, choice.limited_by) == (1.0, "max_risky_fraction")
         assert_allclose(choice.unconstrained_risky_fraction, 0.05 / (0.5 * 0.0256), rtol=1e-12)
 
@@ -101,13 +94,13 @@ class TestLeverageKink:
         assert_allclose(self.LINE_B.expected_return(0.5), 0.055, rtol=1e-12)
 
     def test_target_volatility_above_one_is_capped(self) -> None:
-        choice = choose_risky_fraction(TargetVolatility(0.40), self.LINE_B, self.BORROW)  # 0.40/0.16 = 2.5
+        choice = choose(target(0.40), self.LINE_B, self.BORROW)  # 0.40/0.16 = 2.5
         assert (choice.risky_fraction, choice.limited_by) == (2.0, "max_risky_fraction")
         assert_allclose(choice.unconstrained_risky_fraction, 2.5, rtol=1e-12)
 
 
 def test_target_volatility_closed_form() -> None:
-    choice = choose_risky_fraction(TargetVolatility(0.12), LINE, NO_LEVERAGE)
+    choice = choose(target(0.12), LINE, NO_LEVERAGE)
     assert_allclose(choice.risky_fraction, 0.12 / 0.16, rtol=1e-15)  # y = s / sigma_T
     assert_allclose(LINE.volatility(choice.risky_fraction), 0.12, rtol=1e-15)
 
@@ -115,7 +108,7 @@ def test_target_volatility_closed_form() -> None:
 class TestLossTolerance:
     @pytest.mark.parametrize(("loss", "conf", "horizon"), [(0.10, 0.95, 1.0), (0.05, 0.99, 1.0), (0.15, 0.9, 3.0), (0.2, 0.975, 0.5)])
     def test_binding_probability_equals_one_minus_confidence(self, loss: float, conf: float, horizon: float) -> None:
-        choice = choose_risky_fraction(LossTolerance(loss, conf, horizon), LINE, build_policy(max_risky_fraction=3, borrowing_rate=0.03))
+        choice = choose(loss_tolerance(loss, conf, horizon), LINE, build_policy(max_risky_fraction=3, borrowing_rate=0.03))
         y = choice.unconstrained_risky_fraction
         assert y is not None
         mean, sd = horizon * LINE.expected_return(y), math.sqrt(horizon) * LINE.volatility(y)
@@ -127,7 +120,7 @@ class TestLossTolerance:
     def test_borrowing_piece(self) -> None:
         line = AllocationLine(0.03, 0.08, 0.16, borrowing_rate=0.05)
         policy = build_policy(max_risky_fraction=3.0, borrowing_rate=0.05)
-        choice = choose_risky_fraction(LossTolerance(0.35, 0.95), line, policy)
+        choice = choose(loss_tolerance(0.35, 0.95), line, policy)
         y = choice.risky_fraction
         assert y > 1.0
         # Reference: scipy's brentq on the kinked line's criterion P(R < -L) - (1 - c) = 0.
@@ -137,13 +130,13 @@ class TestLossTolerance:
     def test_never_binding_takes_the_maximum(self) -> None:
         # z * sigma_T < mu_T - rf: a line so steep that more risk never raises the loss quantile.
         steep = AllocationLine(0.03, 0.50, 0.10)
-        choice = choose_risky_fraction(LossTolerance(0.1, 0.9), steep, NO_LEVERAGE)
+        choice = choose(loss_tolerance(0.1, 0.9), steep, NO_LEVERAGE)
         assert (choice.risky_fraction, choice.unconstrained_risky_fraction, choice.limited_by) == (1.0, None, "max_risky_fraction")
 
     @pytest.mark.parametrize(("loss", "conf", "field"), [(0.0, 0.95, "preference.max_loss"), (-0.1, 0.95, "preference.max_loss"), (0.1, 0.5, "preference.confidence"), (0.1, 1.0, "preference.confidence"), (0.1, 0.3, "preference.confidence")])
     def test_refusals(self, loss: float, conf: float, field: str) -> None:
         with pytest.raises(AllocationError) as info:
-            choose_risky_fraction(LossTolerance(loss, conf), LINE, NO_LEVERAGE)
+            choose(loss_tolerance(loss, conf), LINE, NO_LEVERAGE)
         assert info.value.field == field
 
 
@@ -151,18 +144,18 @@ class TestRiskScore:
     POLICY = build_policy(risk_score_table={"1": 10.0, "2": 5.0, "3": 2.5})
 
     def test_table_maps_to_risk_aversion(self) -> None:
-        by_score = choose_risky_fraction(RiskScore(2), LINE, self.POLICY)
-        by_a = choose_risky_fraction(RiskAversion(5.0), LINE, self.POLICY)
+        by_score = choose(score(2), LINE, self.POLICY)
+        by_a = choose(aversion(5.0), LINE, self.POLICY)
         assert by_score == by_a
 
     def test_unknown_score_names_the_table(self) -> None:
-        with pytest.raises(AllocationError, match="not in the plan's risk_score_table") as info:
-            choose_risky_fraction(RiskScore(7), LINE, self.POLICY)
+        with pytest.raises(AllocationError, match="is not a score of the plan's risk_score_table") as info:
+            choose(score(7), LINE, self.POLICY)
         assert info.value.field == "preference.risk_score"
 
     def test_plan_without_table(self) -> None:
         with pytest.raises(AllocationError, match="no risk_score_table"):
-            choose_risky_fraction(RiskScore(1), LINE, NO_LEVERAGE)
+            choose(score(1), LINE, NO_LEVERAGE)
 
 
 @pytest.mark.parametrize(
@@ -192,5 +185,5 @@ def test_random_lines_agree_with_scipy() -> None:
         rb = rf + rng.uniform(0.0, 0.03)
         a = rng.uniform(0.3, 12.0)
         line = AllocationLine(rf, mu, vol, borrowing_rate=rb)
-        choice = choose_risky_fraction(RiskAversion(a), line, build_policy(max_risky_fraction=2.5, borrowing_rate=rb))
+        choice = choose(aversion(a), line, build_policy(max_risky_fraction=2.5, borrowing_rate=rb))
         assert_allclose(choice.risky_fraction, utility_argmax(line, a, 2.5), atol=1e-6)

@@ -190,6 +190,7 @@ ALLOCATE: list[tuple[str, Any]] = [
     ("member-number", alloc(member_id=417)),
     ("member-too-long", alloc(member_id="m" * 200)),
     ("member-control-char", alloc(member_id="m\n1")),
+    ("amount-with-newline", alloc(amount="12\n34")),
     ("preference-missing", alloc(preference=_DROP)),
     ("preference-empty", pref({})),
     ("preference-list", pref([{"risk_aversion": 4}])),

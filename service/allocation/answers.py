@@ -1,0 +1,108 @@
+"""The answer a caller sees for each allocation: the one renderer, for POST and GET, single and batch.
+
+Rendered from `Decisions` (records.py), which a stored record is read back into, so that the
+answer given at the time and the answer read back later are the same text. A single answer
+carries the disclosure texts inline; a batch gives them once at the top (`batch_head`) and each
+result names their version.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import orjson
+
+from .disclosures import disclosures_for
+from .money import money_texts, numbers
+from .records import LIMIT_TEXTS, Context, Decisions
+
+
+def _pair_texts(a: list[str], b: list[str]) -> list[str]:
+    return [f'{{"risky":"{x}","safe":"{y}"}}' for x, y in zip(a, b, strict=True)]
+
+
+def _by_asset_texts(ctx: Context, d: Decisions) -> list[str]:
+    k = len(ctx.codes)
+    if k == 0:
+        return ["{}"] * d.size
+    flat = money_texts(d.by_asset.reshape(-1), ctx.currency)
+    # Codes are letters, digits and . _ - (the mix schema's pattern): no braces to escape.
+    template = "{{" + ",".join(f'{orjson.dumps(c).decode()}:"{{}}"' for c in ctx.codes) + "}}"
+    return [template.format(*flat[i : i + k]) for i in range(0, len(flat), k)]
+
+
+def answer_texts(ctx: Context, d: Decisions, *, inline_disclosures: bool) -> list[str]:
+    """The JSON object text of every member's answer."""
+    n = d.size
+    currency = ctx.currency
+    amount = money_texts(d.amount, currency)
+    amounts = _pair_texts(money_texts(d.risky, currency), money_texts(d.safe, currency))
+    routed = [""] * n
+    rows = np.flatnonzero(d.routed).tolist()
+    if rows:
+        pick = np.array(rows)
+        held = _pair_texts(money_texts(d.held_risky[pick], currency), money_texts(d.held_safe[pick], currency))
+        contribution = money_texts(d.contribution[pick], currency)
+        split = _pair_texts(money_texts(d.to_risky[pick], currency), money_texts(d.to_safe[pick], currency))
+        after = _pair_texts(
+            money_texts(d.held_risky[pick] + d.to_risky[pick], currency),
+            money_texts(d.held_safe[pick] + d.to_safe[pick], currency),
+        )
+        for j, i in enumerate(rows):
+            routed[i] = (
+                f',"holdings":{held[j]},"contribution":"{contribution[j]}",'
+                f'"contribution_split":{split[j]},"after_contribution":{after[j]}'
+            )
+    if inline_disclosures:
+        texts = [orjson.dumps(disclosures_for(y, ctx.disclosures_version)).decode() for y in (0.0, 2.0)]
+        notes = [f'"disclosures":{texts[int(b)]},' for b in (d.risky_fraction > 1.0).tolist()]
+    else:
+        notes = [""] * n
+    head = f'"plan_id":{orjson.dumps(ctx.plan_id).decode()},'
+    mix = (
+        f'"mix_version":{orjson.dumps(ctx.mix_version).decode()},'
+        f'"mix_content_hash":{orjson.dumps(ctx.mix_content_hash).decode()},'
+    )
+    money = f'"currency":{orjson.dumps(currency).decode()},'
+    tail = (
+        f'"disclosures_version":{orjson.dumps(ctx.disclosures_version).decode()},'
+        f'"created_at":{orjson.dumps(ctx.created_at).decode()}'
+    )
+    limits = LIMIT_TEXTS
+    return [
+        f'{{"allocation_id":"{a}",{head}"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{y},'
+        f'"safe_fraction":{sf},"unconstrained_risky_fraction":{u},"limited_by":{limits[lb]},{money}'
+        f'"amount":"{am}","amounts":{ams},"by_asset":{ba},"expected_return":{e},"volatility":{v},'
+        f"{note}{tail}{r}}}"
+        for a, m, p, y, sf, u, lb, am, ams, ba, e, v, note, r in zip(
+            d.allocation_ids,
+            d.member_ids,
+            d.preference_texts,
+            numbers(d.risky_fraction),
+            numbers(1.0 - d.risky_fraction),
+            numbers(d.unconstrained),
+            d.limited.tolist(),
+            amount,
+            amounts,
+            _by_asset_texts(ctx, d),
+            numbers(d.expected_return),
+            numbers(d.volatility),
+            notes,
+            routed,
+            strict=True,
+        )
+    ]
+
+
+def batch_head(ctx: Context, count: int, highest_risky_fraction: float) -> bytes:
+    """The batch answer's opening: what all results share, the disclosure texts once, the count."""
+    head = orjson.dumps({
+        "plan_id": ctx.plan_id,
+        "mix_version": ctx.mix_version,
+        "mix_content_hash": ctx.mix_content_hash,
+        "created_at": ctx.created_at,
+        "count": count,
+        # Shown once for the whole batch; the borrowing text applies to results with y > 1.
+        "disclosures_version": ctx.disclosures_version,
+        "disclosures": disclosures_for(highest_risky_fraction, ctx.disclosures_version),
+    })
+    return head[:-1] + b',"results":['

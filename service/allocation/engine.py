@@ -1,0 +1,120 @@
+"""The allocation pipeline: every member through the same rules, a single request as a batch of one.
+
+    members (JSON values) --read_members--> Members (columns) --check_preferences--> (refuse all bad)
+      --wanted_fractions--> y before the band --bound_by_policy--> y, limited_by
+      --risky_units, split_rows, routing--> money in minor units --> Decisions
+      --record_texts / answer_texts--> the logged record and the answer
+
+`allocate` does everything up to Decisions and refuses the request with `MemberErrors` listing
+every bad member before anything can be logged; the texts are written later, chunk by chunk, by
+`Allocations.records` and `Allocations.answers`. Nothing here knows HTTP or databases.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .answers import answer_texts, batch_head
+from .disclosures import DISCLOSURES_VERSION
+from .issues import MemberErrors
+from .line import AllocationLine
+from .members import NOT_HELD, Members, read_members
+from .mixes import MixView
+from .money import risky_units, split_rows
+from .policy import Policy
+from .preferences import bound_by_policy, check_preferences, wanted_fractions
+from .records import Context, Decisions, preference_texts, record_texts
+
+
+def line_for(view: MixView, policy: Policy) -> AllocationLine:
+    return AllocationLine(
+        risk_free_rate=view.risk_free_rate,
+        tangency_return=view.tangency_return,
+        tangency_volatility=view.tangency_volatility,
+        borrowing_rate=policy.borrowing_rate if policy.allows_borrowing else None,
+    )
+
+
+@dataclass(frozen=True)
+class Allocations:
+    """Every member of a request decided; texts are rendered on demand, a range of rows at a time."""
+
+    context: Context
+    decisions: Decisions
+
+    @property
+    def size(self) -> int:
+        return self.decisions.size
+
+    def records(self, rows: slice = slice(None)) -> list[str]:
+        return record_texts(self.context, self.decisions.rows(rows))
+
+    def answers(self, rows: slice = slice(None), *, inline_disclosures: bool) -> list[str]:
+        return answer_texts(self.context, self.decisions.rows(rows), inline_disclosures=inline_disclosures)
+
+    def batch_head(self) -> bytes:
+        return batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))
+
+
+def decide(
+    members: Members,
+    view: MixView,
+    policy: Policy,
+    new_ids: Callable[[int], list[str]],
+    locate: Callable[[int, str], str],
+) -> Decisions:
+    """The rules proper, on columns that were read and checked; refuses members no y satisfies."""
+    line = line_for(view, policy)
+    wanted, impossible = wanted_fractions(members.preferences, line, policy)
+    if impossible:
+        raise MemberErrors(impossible, locate)
+    fractions = bound_by_policy(wanted, policy)
+    y = fractions.risky_fraction
+    risky = risky_units(members.total, y)
+    routed = members.routed
+    # Direct the new money to the side that lacks it, within [0, contribution]: no selling.
+    to_risky = np.where(routed, np.clip(risky - members.held_risky, 0, members.contribution), NOT_HELD)
+    to_safe = np.where(routed, members.contribution - to_risky, NOT_HELD)
+    return Decisions(
+        allocation_ids=new_ids(members.size),
+        member_ids=members.member_ids,
+        preference_texts=preference_texts(members.preferences),
+        risky_fraction=y,
+        unconstrained=fractions.unconstrained,
+        limited=fractions.limited,
+        expected_return=line.expected_return(y),
+        volatility=line.volatility(y),
+        amount=members.total,
+        risky=risky,
+        safe=members.total - risky,
+        by_asset=split_rows(risky, view.weights),
+        held_risky=members.held_risky,
+        held_safe=members.held_safe,
+        contribution=members.contribution,
+        to_risky=to_risky,
+        to_safe=to_safe,
+    )
+
+
+def allocate(
+    items: Sequence[Any],
+    *,
+    plan_id: str,
+    currency: str,
+    policy: Policy,
+    view: MixView,
+    created_at: str,
+    new_ids: Callable[[int], list[str]],
+    locate: Callable[[int, str], str],
+) -> Allocations:
+    """Read, check and decide every member; raises MemberErrors naming each bad one (via `locate`)."""
+    members, issues = read_members(items, currency)
+    issues += check_preferences(members.preferences, policy)
+    if issues:
+        raise MemberErrors(issues, locate)
+    context = Context(plan_id, view.version, view.content_hash, created_at, currency, DISCLOSURES_VERSION, view.codes)
+    return Allocations(context, decide(members, view, policy, new_ids, locate))

@@ -1,0 +1,222 @@
+"""Members read into columns: the one strict reader of allocation requests.
+
+A single request and a batch come through here alike. `read_members` takes the members as JSON
+values (parsed by the API layer, which refuses NaN and Infinity literals) and returns `Members`,
+one column per field, with a `FieldIssue` for everything wrong with any member. Strict means: no
+booleans or strings where numbers belong, no numbers where strings belong, no unknown fields;
+an optional field given as null counts as left out.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .issues import FieldIssue
+from .money import Units, format_units, parse_amounts
+from .preferences import KIND_NAMES, MAX_LOSS, RISK_AVERSION, RISK_SCORE, PreferenceColumns
+
+# Printable ASCII without space, quote or backslash: member ids go into log records unescaped.
+MEMBER_ID_PATTERN = r"[!#-\[\]-~]{1,128}"
+MEMBER_ID_RULE = "must be a string of 1 to 128 printable ASCII characters without spaces, quotes or backslashes"
+MEMBER_FIELDS = frozenset({"member_id", "amount", "preference", "holdings", "contribution"})
+_LOSS_FIELDS = frozenset({"max_loss", "confidence", "horizon_years"})
+_PREFERENCE_FIELDS = frozenset(KIND_NAMES) | _LOSS_FIELDS
+_ONE_KIND = {k: i for i, k in enumerate(KIND_NAMES) if i != MAX_LOSS}
+_KINDS_RULE = "give exactly one of risk_aversion, target_volatility, max_loss (with confidence) or risk_score"
+_IDS = re.compile(f"(?:{MEMBER_ID_PATTERN}\n)*{MEMBER_ID_PATTERN}")
+_ID = re.compile(MEMBER_ID_PATTERN)
+NOT_HELD = -1
+
+
+@dataclass(frozen=True)
+class Members:
+    """n members as columns. `held_risky`/`held_safe` are NOT_HELD where no holdings were given;
+    `contribution` is 0 where none was."""
+
+    member_ids: list[str]
+    preferences: PreferenceColumns
+    total: Units
+    held_risky: Units
+    held_safe: Units
+    contribution: Units
+
+    @property
+    def size(self) -> int:
+        return len(self.member_ids)
+
+    @property
+    def routed(self) -> NDArray[np.bool_]:
+        return self.held_risky != NOT_HELD
+
+
+def _number(v: Any) -> bool:
+    return type(v) is float or type(v) is int
+
+
+def _preference(p: Any) -> tuple[int, float, float, float] | tuple[str, str]:
+    """(kind, value, confidence, horizon), or (field, reason) for what is wrong."""
+    if type(p) is not dict:
+        return "preference", f"must be an object: {_KINDS_RULE}"
+    unknown = sorted(p.keys() - _PREFERENCE_FIELDS)
+    if unknown:
+        return f"preference.{unknown[0]}", f"is not a preference field; {_KINDS_RULE}"
+    kinds = [k for k in KIND_NAMES if p.get(k) is not None]
+    if not kinds:
+        return "preference", _KINDS_RULE
+    if len(kinds) > 1:
+        return "preference", f"{' and '.join(kinds)} given together; {_KINDS_RULE}"
+    kind = kinds[0]
+    value = p[kind]
+    if kind == "risk_score":
+        if type(value) is not int:
+            return "preference.risk_score", "must be an integer score of the plan's risk_score_table"
+    elif not _number(value):
+        return f"preference.{kind}", "must be a number"
+    if kind != "max_loss":
+        for extra in ("confidence", "horizon_years"):
+            if p.get(extra) is not None:
+                return f"preference.{extra}", "belongs to a max_loss preference only"
+        return _ONE_KIND[kind], float(value), 0.0, 1.0
+    confidence, horizon = p.get("confidence"), p.get("horizon_years")
+    if confidence is None:
+        return "preference.confidence", "required with max_loss: a probability in (0.5, 1)"
+    if not _number(confidence):
+        return "preference.confidence", "must be a number"
+    if horizon is None:
+        horizon = 1.0
+    elif not _number(horizon):
+        return "preference.horizon_years", "must be a number of years"
+    return MAX_LOSS, float(value), float(confidence), float(horizon)
+
+
+def read_members(items: Sequence[Any], currency: str) -> tuple[Members, list[FieldIssue]]:
+    """Every member's fields into columns, and every problem found (none: all members readable).
+
+    Members with a problem keep harmless placeholder values in the columns; callers must not
+    answer them (the pipeline refuses the whole request)."""
+    n = len(items)
+    issues: list[FieldIssue] = []
+    ids: list[Any] = [""] * n
+    kind = [RISK_AVERSION] * n
+    value = [1.0] * n
+    confidence = [0.0] * n
+    horizon = [1.0] * n
+    amounts: list[Any] = [None] * n
+    contributions: list[Any] = [None] * n
+    routed_rows: list[int] = []
+    held_risky: list[Any] = []
+    held_safe: list[Any] = []
+    member_fields, one_kind = MEMBER_FIELDS, _ONE_KIND
+    for i, m in enumerate(items):
+        if type(m) is not dict:
+            issues.append(FieldIssue(i, "", "must be an object with member_id, preference and amount or holdings"))
+            continue
+        if not m.keys() <= member_fields:
+            issues.append(FieldIssue(i, sorted(m.keys() - member_fields)[0], "is not a field of a member"))
+        ids[i] = m.get("member_id")
+        amounts[i] = m.get("amount")
+        contributions[i] = m.get("contribution")
+        holdings = m.get("holdings")
+        if holdings is not None:
+            if type(holdings) is not dict or holdings.keys() != {"risky", "safe"}:
+                issues.append(FieldIssue(i, "holdings", 'must be an object with exactly "risky" and "safe" amounts'))
+            elif holdings["risky"] is None or holdings["safe"] is None:
+                issues.append(FieldIssue(i, "holdings", "needs both risky and safe amounts"))
+            else:
+                routed_rows.append(i)
+                held_risky.append(holdings["risky"])
+                held_safe.append(holdings["safe"])
+        p = m.get("preference")
+        # The common shape first (one kind, a number); anything else is read by _preference.
+        if type(p) is dict and len(p) == 1:
+            ((key, v),) = p.items()
+            k = one_kind.get(key)
+            if k is not None and (type(v) is int or (type(v) is float and k != RISK_SCORE)):
+                kind[i], value[i] = k, float(v)
+                continue
+        read = _preference(p)
+        if len(read) == 2:
+            issues.append(FieldIssue(i, read[0], read[1]))
+        else:
+            kind[i], value[i], confidence[i], horizon[i] = read
+    joined = "\n".join(ids) if all(type(x) is str for x in ids) else None
+    # One regex over the joined ids; the count of separators keeps an id holding one honest.
+    if joined is None or joined.count("\n") != n - 1 or not _IDS.fullmatch(joined):
+        for i, x in enumerate(ids):
+            if type(items[i]) is not dict:
+                continue
+            if x is None:
+                issues.append(FieldIssue(i, "member_id", "required"))
+            elif type(x) is not str or not _ID.fullmatch(x):
+                issues.append(FieldIssue(i, "member_id", MEMBER_ID_RULE))
+    issues += _duplicates(ids)
+    total, held_r, held_s, contribution = _accounts(
+        amounts, contributions, routed_rows, held_risky, held_safe, currency, issues
+    )
+    preferences = PreferenceColumns(
+        np.array(kind, dtype=np.int8), np.array(value), np.array(confidence), np.array(horizon)
+    )
+    return Members([str(x) for x in ids], preferences, total, held_r, held_s, contribution), issues
+
+
+def _duplicates(ids: list[Any]) -> list[FieldIssue]:
+    first: dict[str, int] = {}
+    found: list[FieldIssue] = []
+    if len(set(x for x in ids if type(x) is str)) == sum(type(x) is str for x in ids):
+        return found
+    for i, x in enumerate(ids):
+        if type(x) is not str:
+            continue
+        seen = first.setdefault(x, i)
+        if seen != i:
+            found.append(FieldIssue(i, "member_id", f"{x!r} is also members[{seen}]; each member once per batch"))
+    return found
+
+
+def _accounts(
+    amounts: list[Any],
+    contributions: list[Any],
+    routed_rows: list[int],
+    held_risky: list[Any],
+    held_safe: list[Any],
+    currency: str,
+    issues: list[FieldIssue],
+) -> tuple[Units, Units, Units, Units]:
+    """The money each member splits: its amount, or holdings plus contribution."""
+    n = len(amounts)
+    amount, problems = parse_amounts(amounts, currency)
+    issues += [FieldIssue(i, "amount", reason) for i, reason in problems]
+    contribution = np.zeros(n, dtype=np.int64)
+    given = [i for i, c in enumerate(contributions) if c is not None]
+    if given:
+        units, problems = parse_amounts([contributions[i] for i in given], currency)
+        contribution[given] = units
+        issues += [FieldIssue(given[j], "contribution", reason) for j, reason in problems]
+    risky = np.full(n, NOT_HELD, dtype=np.int64)
+    safe = np.full(n, NOT_HELD, dtype=np.int64)
+    if routed_rows:
+        for name, raw, column in (("holdings.risky", held_risky, risky), ("holdings.safe", held_safe, safe)):
+            units, problems = parse_amounts(raw, currency)
+            column[routed_rows] = units
+            issues += [FieldIssue(routed_rows[j], name, reason) for j, reason in problems]
+    routed = risky != NOT_HELD
+    stated = np.array([a is not None for a in amounts], dtype=bool)
+    from_holdings = np.where(routed, risky + safe + contribution, 0)
+    for i in np.flatnonzero(~routed & ~stated).tolist():
+        issues.append(FieldIssue(i, "amount", "required unless holdings are given"))
+    for i in np.flatnonzero(~routed & np.array([c is not None for c in contributions], dtype=bool)).tolist():
+        issues.append(FieldIssue(i, "contribution", "needs holdings: the split of what is already held"))
+    for i in np.flatnonzero(routed & stated & (amount != from_holdings)).tolist():
+        issues.append(FieldIssue(
+            i, "amount",
+            f"{format_units(int(amount[i]), currency)} differs from holdings plus contribution "
+            f"{format_units(int(from_holdings[i]), currency)}; leave amount out or make them agree",
+        ))
+    total = np.where(routed, from_holdings, amount)
+    return total, risky, safe, contribution
