@@ -90,22 +90,27 @@ def current_mix(plan_id: str, caller: CallerDep, state: StateDep) -> Response:
     version = state.active_version(plan_id)
     if version is None:
         raise NotFound(f"plan {plan_id!r} has no active mix yet; a committee activates one")
-    return json_response({**state.mixes.published(plan_id, version), "active": True})
+    return json_response(_mix_document(state, plan_id, version))
 
 
 @router.get("/{version}", response_model=MixOut, operation_id="get_mix", responses=problems(*AUTHED))
 def read_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -> Response:
     caller.require(plan_id, *READERS)
     state.plan(plan_id)
+    return json_response(_mix_document(state, plan_id, version))
+
+
+def _mix_document(state: AppState, plan_id: str, version: str) -> dict[str, object]:
+    """The solved mix as published, its state and lifecycle, and the inputs as stored."""
     doc = state.mixes.published(plan_id, version)
     mix_state, entry = state.mixes.state(plan_id, version)
-    return json_response({
+    return {
         **doc,
         "active": mix_state is MixState.ACTIVE,
         "state": mix_state.value,
         "lifecycle": lifecycle_document(entry, mix_state),
         "inputs": state.mixes.inputs(plan_id, version),
-    })
+    }
 
 
 @router.post(

@@ -44,6 +44,8 @@ FloatArray = npt.NDArray[np.float64]
 # Trading days, weeks, months and quarters in a year (common practice).
 PERIODS_PER_YEAR: Mapping[str, int] = {"daily": 252, "weekly": 52, "monthly": 12, "quarterly": 4, "annual": 1}
 COVARIANCE_METHODS = ("sample", "shrinkage")
+# A simple return above this in one period (1,000 %) is a unit mistake, not a market move.
+MAX_PERIOD_RETURN = 10.0
 # Smallest eigenvalue of a repaired correlation matrix: positive definite with a condition number
 # of at most N / 1e-8, well inside the bound the service publishes under (1e12 by default).
 REPAIR_EIGENVALUE_FLOOR = 1e-8
@@ -123,6 +125,8 @@ def _label(i: int, row_labels: Sequence[str] | None) -> str:
 
 def _history(codes: tuple[str, ...], returns: FloatArray, row_labels: Sequence[str] | None) -> FloatArray:
     t, n = returns.shape
+    if t < n + 1:
+        raise InputError("returns", f"{n} assets need at least {n + 1} observations for a covariance estimate; got {t}")
     if row_labels is not None and len(row_labels) != t:
         raise InputError("dates", f"{len(row_labels)} dates for {t} observations; give one date per observation")
     for j, code in enumerate(codes):
@@ -138,11 +142,15 @@ def _history(codes: tuple[str, ...], returns: FloatArray, row_labels: Sequence[s
             i = int(below[0])
             raise InputError(f"returns.{code}[{i}]", f"{column[i]:g} at {_label(i, row_labels)} is a loss of more than "
                              "100 %: are these in percent? Returns are simple returns as decimals (-0.05 = -5 %)")
+        above = np.flatnonzero(column > MAX_PERIOD_RETURN)
+        if above.size:
+            i = int(above[0])
+            raise InputError(f"returns.{code}[{i}]", f"{column[i]:g} at {_label(i, row_labels)} is a gain of more than "
+                             f"{MAX_PERIOD_RETURN:.0%} in one period: are these in percent? Returns are simple returns "
+                             "as decimals (0.05 = 5 %)")
         if float(np.ptp(column)) == 0.0:
             raise InputError(f"returns.{code}", f"the series is constant ({column[0]:g} every period): it has no "
                              "variance to estimate")
-    if t < n + 1:
-        raise InputError("returns", f"{n} assets need at least {n + 1} observations for a covariance estimate; got {t}")
     return returns
 
 

@@ -115,7 +115,7 @@ async def test_every_refusal_names_its_field(world: World, new_plan_id: str, his
     percent = body()
     percent["returns"]["BusEq"] = [100 * v for v in percent["returns"]["BusEq"]]
     loud = body()  # in percent, and never below -100 %: the annualised volatility gives it away
-    loud["returns"]["BusEq"] = [abs(100 * v) for v in loud["returns"]["BusEq"]]
+    loud["returns"]["BusEq"] = [abs(10 * v) for v in loud["returns"]["BusEq"]]
     swapped = list(dates)
     swapped[4], swapped[5] = swapped[5], swapped[4]
     few = {"frequency": "monthly", "returns": {c: x[:6, j].tolist() for j, c in enumerate(CODES)}, "risk_free_rate": 0.02}

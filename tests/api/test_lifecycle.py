@@ -52,7 +52,8 @@ async def test_published_active_retired(world: World, new_plan_id: str) -> None:
 
     a = await c.post(f"/v1/plans/{plan}/mixes/2026-q4/activate", headers=committee)
     assert a.status_code == 200 and a.json()["retired_version"] is None
-    assert (await c.post(url, json=member("2026-q4"), headers=keys["portal"])).status_code == 201
+    first = await c.post(url, json=member("2026-q4"), headers=keys["portal"])
+    assert first.status_code == 201
 
     await world.publish(plan, keys, mix("2027-q1", risk_free_rate=0.029), activate=False)
     r = await c.post(url, json=member("2027-q1"), headers=keys["portal"])
@@ -72,6 +73,11 @@ async def test_published_active_retired(world: World, new_plan_id: str) -> None:
     r = await c.post(f"{url}/batch", json={"mix_version": "2026-q4", "members": [{k: v for k, v in member("x").items() if k != "mix_version"}]}, headers=keys["portal"])
     assert assert_problem(r, 409, "mix_version")["active_version"] == "2027-q1"
     assert (await c.post(url, json=member("2027-q1"), headers=keys["portal"])).status_code == 201
+    # What was logged under the retired version reads back unchanged.
+    again = await c.get(f"{url}/{first.json()['allocation_id']}", headers=keys["portal"])
+    assert again.status_code == 200 and again.json() == first.json()
+    current = (await c.get(f"/v1/plans/{plan}/mixes/current", headers=keys["portal"])).json()
+    assert (current["version"], current["state"], current["inputs"]["risk_free_rate"]) == ("2027-q1", "active", 0.029)
 
     # Retired is never active again; the only version in force cannot be retired.
     assert_problem(await c.post(f"/v1/plans/{plan}/mixes/2026-q4/activate", headers=committee), 409, "version")

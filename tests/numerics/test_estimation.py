@@ -126,6 +126,10 @@ def test_refusals_name_the_field() -> None:
     crash[3, 0] = -1.5
     refused("returns.A[3]", returns=crash)
     refused("dates", returns=x, row_labels=["2020-01"])
+    refused("returns", returns=np.empty((0, 2)))
+    huge = x.copy()
+    huge[2, 1] = 1e300
+    assert "percent" in refused("returns.B[2]", returns=huge).reason
     refused("expected_returns", returns=x, expected_returns=[0.05])
 
 
