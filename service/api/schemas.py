@@ -69,6 +69,9 @@ class Problem(BaseModel):
     detail: str
     instance: str | None = None
     errors: list[dict[str, str]] | None = None
+    active_version: str | None = Field(
+        default=None, description="on a 409 about versions: the version in force (null when none is yet)"
+    )
 
 
 # ---- plans and keys -------------------------------------------------------------------------

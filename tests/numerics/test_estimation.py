@@ -11,6 +11,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 
 from service.numerics import (
@@ -214,3 +216,21 @@ def test_higham_against_a_semidefinite_program(floor: float) -> None:
     assert near.distance <= problem.value + 1e-9
     assert_allclose(np.diag(near.matrix), 1.0, atol=0)
     assert np.linalg.eigvalsh(near.matrix)[0] >= floor - 1e-9
+
+
+# ---- random shapes ----------------------------------------------------------------------------------
+
+
+@settings(max_examples=40, deadline=None)
+@given(n=st.integers(1, 8), extra=st.integers(1, 40), seed=st.integers(0, 2**32 - 1))
+def test_ledoit_wolf_matches_scikit_learn_on_random_shapes(n: int, extra: int, seed: int) -> None:
+    from sklearn.covariance import LedoitWolf
+
+    x = np.random.default_rng(seed).standard_t(5, size=(n + extra, n)) * 0.03
+    reference = LedoitWolf().fit(x)  # scikit-learn, computed here
+    cov, intensity = ledoit_wolf(x)
+    assert_allclose(intensity, reference.shrinkage_, rtol=1e-9, atol=1e-15)
+    assert_allclose(cov, reference.covariance_, rtol=1e-9, atol=1e-18)
+    assert 0.0 <= intensity <= 1.0
+    found = estimate_from_history([f"C{i}" for i in range(n)], x, frequency="weekly", covariance_method="shrinkage")
+    assert np.linalg.eigvalsh(found.correlation)[0] > 0  # shrinkage toward m I keeps it positive definite
