@@ -5,7 +5,7 @@ numerics below it; knows nothing of HTTP or databases.
 """
 
 from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
-from .engine import Allocations, allocate, decide, line_for
+from .engine import Allocations, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .estimation import estimate_mix, parse_dates
 from .lifecycle import (
@@ -35,8 +35,9 @@ from .mixes import (
 )
 from .money import format_units, minor_exponent, money_texts, parse_amount, parse_amounts
 from .policy import Policy, build_policy, check_rates
-from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
 from .answers import answer_texts
+from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
+from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, read_batch, read_single
 
 __all__ = [
     "RESERVED_VERSION_NAMES",
@@ -56,9 +57,11 @@ __all__ = [
     "MAX_LISTED",
     "MEMBER_ID_PATTERN",
     "RECORD_FORM",
+    "VERSION_PATTERN",
     "AllocationError",
     "AllocationIds",
     "AllocationLine",
+    "AllocationRequest",
     "Allocations",
     "Context",
     "Decisions",
@@ -67,7 +70,9 @@ __all__ = [
     "Members",
     "MixView",
     "Policy",
+    "TooManyMembers",
     "allocate",
+    "allocate_each",
     "answer_texts",
     "batch_field",
     "build_policy",
@@ -86,7 +91,9 @@ __all__ = [
     "parse_amount",
     "parse_amounts",
     "published_document",
+    "read_batch",
     "read_members",
+    "read_single",
     "record_texts",
     "single_field",
     "solve",

@@ -12,7 +12,7 @@ import numpy as np
 import orjson
 
 from .disclosures import disclosures_for
-from .money import money_texts, numbers
+from .money import money_columns, number_columns
 from .records import LIMIT_TEXTS, Context, Decisions
 
 
@@ -20,34 +20,30 @@ def _pair_texts(a: list[str], b: list[str]) -> list[str]:
     return [f'{{"risky":"{x}","safe":"{y}"}}' for x, y in zip(a, b, strict=True)]
 
 
-def _by_asset_texts(ctx: Context, d: Decisions) -> list[str]:
-    k = len(ctx.codes)
+def _by_asset_texts(codes: tuple[str, ...], flat: list[str]) -> list[str]:
+    k = len(codes)
     if k == 0:
-        return ["{}"] * d.size
-    flat = money_texts(d.by_asset.reshape(-1), ctx.currency)
+        return []
     # Codes are letters, digits and . _ - (the mix schema's pattern): no braces to escape.
-    template = "{{" + ",".join(f'{orjson.dumps(c).decode()}:"{{}}"' for c in ctx.codes) + "}}"
+    template = "{{" + ",".join(f'{orjson.dumps(c).decode()}:"{{}}"' for c in codes) + "}}"
     return [template.format(*flat[i : i + k]) for i in range(0, len(flat), k)]
 
 
 def answer_texts(ctx: Context, d: Decisions, *, inline_disclosures: bool) -> list[str]:
     """The JSON object text of every member's answer."""
     n = d.size
-    currency = ctx.currency
-    amount = money_texts(d.amount, currency)
-    amounts = _pair_texts(money_texts(d.risky, currency), money_texts(d.safe, currency))
+    amount, risky, safe, by_asset = money_columns(ctx.currency, d.amount, d.risky, d.safe, d.by_asset.reshape(-1))
+    amounts = _pair_texts(risky, safe)
+    asset_texts = _by_asset_texts(ctx.codes, by_asset) if ctx.codes else ["{}"] * n
     routed = [""] * n
-    rows = np.flatnonzero(d.routed).tolist()
-    if rows:
-        pick = np.array(rows)
-        held = _pair_texts(money_texts(d.held_risky[pick], currency), money_texts(d.held_safe[pick], currency))
-        contribution = money_texts(d.contribution[pick], currency)
-        split = _pair_texts(money_texts(d.to_risky[pick], currency), money_texts(d.to_safe[pick], currency))
-        after = _pair_texts(
-            money_texts(d.held_risky[pick] + d.to_risky[pick], currency),
-            money_texts(d.held_safe[pick] + d.to_safe[pick], currency),
+    if d.routed.any():
+        rows = np.flatnonzero(d.routed)
+        hr, hs, to_r, to_s = d.held_risky[rows], d.held_safe[rows], d.to_risky[rows], d.to_safe[rows]
+        held_r, held_s, contribution, split_r, split_s, after_r, after_s = money_columns(
+            ctx.currency, hr, hs, d.contribution[rows], to_r, to_s, hr + to_r, hs + to_s
         )
-        for j, i in enumerate(rows):
+        held, split, after = _pair_texts(held_r, held_s), _pair_texts(split_r, split_s), _pair_texts(after_r, after_s)
+        for j, i in enumerate(rows.tolist()):
             routed[i] = (
                 f',"holdings":{held[j]},"contribution":"{contribution[j]}",'
                 f'"contribution_split":{split[j]},"after_contribution":{after[j]}'
@@ -62,33 +58,23 @@ def answer_texts(ctx: Context, d: Decisions, *, inline_disclosures: bool) -> lis
         f'"mix_version":{orjson.dumps(ctx.mix_version).decode()},'
         f'"mix_content_hash":{orjson.dumps(ctx.mix_content_hash).decode()},'
     )
-    money = f'"currency":{orjson.dumps(currency).decode()},'
+    money = f'"currency":{orjson.dumps(ctx.currency).decode()},'
     tail = (
         f'"disclosures_version":{orjson.dumps(ctx.disclosures_version).decode()},'
         f'"created_at":{orjson.dumps(ctx.created_at).decode()}'
     )
     limits = LIMIT_TEXTS
+    y, sf, u, e, v = number_columns(
+        d.risky_fraction, 1.0 - d.risky_fraction, d.unconstrained, d.expected_return, d.volatility
+    )
     return [
-        f'{{"allocation_id":"{a}",{head}"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{y},'
-        f'"safe_fraction":{sf},"unconstrained_risky_fraction":{u},"limited_by":{limits[lb]},{money}'
-        f'"amount":"{am}","amounts":{ams},"by_asset":{ba},"expected_return":{e},"volatility":{v},'
+        f'{{"allocation_id":"{a}",{head}"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{yy},'
+        f'"safe_fraction":{ss},"unconstrained_risky_fraction":{uu},"limited_by":{limits[lb]},{money}'
+        f'"amount":"{am}","amounts":{ams},"by_asset":{ba},"expected_return":{ee},"volatility":{vv},'
         f"{note}{tail}{r}}}"
-        for a, m, p, y, sf, u, lb, am, ams, ba, e, v, note, r in zip(
-            d.allocation_ids,
-            d.member_ids,
-            d.preference_texts,
-            numbers(d.risky_fraction),
-            numbers(1.0 - d.risky_fraction),
-            numbers(d.unconstrained),
-            d.limited.tolist(),
-            amount,
-            amounts,
-            _by_asset_texts(ctx, d),
-            numbers(d.expected_return),
-            numbers(d.volatility),
-            notes,
-            routed,
-            strict=True,
+        for a, m, p, yy, ss, uu, lb, am, ams, ba, ee, vv, note, r in zip(
+            d.allocation_ids, d.member_ids, d.preference_texts, y, sf, u, d.limited.tolist(),
+            amount, amounts, asset_texts, e, v, notes, routed, strict=True,
         )
     ]
 

@@ -6,8 +6,10 @@
       --record_texts / answer_texts--> the logged record and the answer
 
 `allocate` does everything up to Decisions and refuses the request with `MemberErrors` listing
-every bad member before anything can be logged; the texts are written later, chunk by chunk, by
-`Allocations.records` and `Allocations.answers`. Nothing here knows HTTP or databases.
+every bad member before anything can be logged (a batch is all or nothing); `allocate_each`
+runs the same steps on members of independent requests decided together, and sets each bad
+one apart. The texts are written later, chunk by chunk, by `Allocations.records` and
+`Allocations.answers`. Nothing here knows HTTP or databases.
 """
 
 from __future__ import annotations
@@ -20,9 +22,9 @@ import numpy as np
 
 from .answers import answer_texts, batch_head
 from .disclosures import DISCLOSURES_VERSION
-from .issues import MemberErrors
+from .issues import FieldIssue, MemberErrors, batch_field
 from .line import AllocationLine
-from .members import NOT_HELD, Members, read_members
+from .members import NOT_HELD, Members, duplicate_members, read_members
 from .mixes import MixView
 from .money import risky_units, split_rows
 from .policy import Policy
@@ -76,9 +78,13 @@ def decide(
     y = fractions.risky_fraction
     risky = risky_units(members.total, y)
     routed = members.routed
-    # Direct the new money to the side that lacks it, within [0, contribution]: no selling.
-    to_risky = np.where(routed, np.clip(risky - members.held_risky, 0, members.contribution), NOT_HELD)
-    to_safe = np.where(routed, members.contribution - to_risky, NOT_HELD)
+    if routed.any():
+        # Direct the new money to the side that lacks it, within [0, contribution]: no selling.
+        lacking = np.minimum(np.maximum(risky - members.held_risky, 0), members.contribution)
+        to_risky = np.where(routed, lacking, NOT_HELD)
+        to_safe = np.where(routed, members.contribution - lacking, NOT_HELD)
+    else:
+        to_risky = to_safe = members.held_risky  # all NOT_HELD
     return Decisions(
         allocation_ids=new_ids(members.size),
         member_ids=members.member_ids,
@@ -111,10 +117,41 @@ def allocate(
     new_ids: Callable[[int], list[str]],
     locate: Callable[[int, str], str],
 ) -> Allocations:
-    """Read, check and decide every member; raises MemberErrors naming each bad one (via `locate`)."""
+    """Read, check and decide every member of one request; raises MemberErrors naming each bad
+    one (via `locate`). A member_id may appear once per request."""
     members, issues = read_members(items, currency)
+    issues += duplicate_members(members.member_ids)
     issues += check_preferences(members.preferences, policy)
     if issues:
         raise MemberErrors(issues, locate)
     context = Context(plan_id, view.version, view.content_hash, created_at, currency, DISCLOSURES_VERSION, view.codes)
     return Allocations(context, decide(members, view, policy, new_ids, locate))
+
+
+def allocate_each(
+    items: Sequence[Any],
+    *,
+    plan_id: str,
+    currency: str,
+    policy: Policy,
+    view: MixView,
+    created_at: str,
+    new_ids: Callable[[int], list[str]],
+) -> tuple[Allocations, list[int], dict[int, list[FieldIssue]]]:
+    """Members of separate requests through the same steps: (the good ones decided, their
+    positions in `items`, each bad one's issues by position)."""
+    members, issues = read_members(items, currency)
+    issues += check_preferences(members.preferences, policy)
+    refused: dict[int, list[FieldIssue]] = {}
+    for issue in issues:
+        refused.setdefault(issue.index, []).append(issue)
+    context = Context(plan_id, view.version, view.content_hash, created_at, currency, DISCLOSURES_VERSION, view.codes)
+    while True:
+        good = [i for i in range(members.size) if i not in refused]
+        chosen = members if len(good) == members.size else members.rows(good)
+        try:
+            return Allocations(context, decide(chosen, view, policy, new_ids, batch_field)), good, refused
+        except MemberErrors as impossible:
+            # Rare (a loss bound even the safe holding fails): set those apart and decide the rest.
+            for issue in impossible.issues:
+                refused.setdefault(good[issue.index], []).append(issue)

@@ -31,6 +31,7 @@ class MemberErrors(AllocationError):
 
     def __init__(self, issues: Iterable[FieldIssue], locate: Callable[[int, str], str]) -> None:
         ordered = sorted(issues)
+        self.issues = ordered
         self.count = len(ordered)
         self.members = len({i.index for i in ordered})
         self.listed = [(locate(i.index, i.field), i.reason) for i in ordered[:MAX_LISTED]]

@@ -54,6 +54,16 @@ class Members:
     def routed(self) -> NDArray[np.bool_]:
         return self.held_risky != NOT_HELD
 
+    def rows(self, picked: list[int]) -> Members:
+        """The members at these positions, in this order."""
+        at = np.array(picked, dtype=np.intp)
+        p = self.preferences
+        return Members(
+            [self.member_ids[i] for i in picked],
+            PreferenceColumns(p.kind[at], p.value[at], p.confidence[at], p.horizon[at]),
+            self.total[at], self.held_risky[at], self.held_safe[at], self.contribution[at],
+        )
+
 
 def _number(v: Any) -> bool:
     return type(v) is float or type(v) is int
@@ -155,7 +165,6 @@ def read_members(items: Sequence[Any], currency: str) -> tuple[Members, list[Fie
                 issues.append(FieldIssue(i, "member_id", "required"))
             elif type(x) is not str or not _ID.fullmatch(x):
                 issues.append(FieldIssue(i, "member_id", MEMBER_ID_RULE))
-    issues += _duplicates(ids)
     total, held_r, held_s, contribution = _accounts(
         amounts, contributions, routed_rows, held_risky, held_safe, currency, issues
     )
@@ -165,14 +174,13 @@ def read_members(items: Sequence[Any], currency: str) -> tuple[Members, list[Fie
     return Members([str(x) for x in ids], preferences, total, held_r, held_s, contribution), issues
 
 
-def _duplicates(ids: list[Any]) -> list[FieldIssue]:
+def duplicate_members(ids: Sequence[str]) -> list[FieldIssue]:
+    """A member_id twice in one batch: the later position, naming the earlier."""
     first: dict[str, int] = {}
     found: list[FieldIssue] = []
-    if len(set(x for x in ids if type(x) is str)) == sum(type(x) is str for x in ids):
+    if len(set(ids)) == len(ids):
         return found
     for i, x in enumerate(ids):
-        if type(x) is not str:
-            continue
         seen = first.setdefault(x, i)
         if seen != i:
             found.append(FieldIssue(i, "member_id", f"{x!r} is also members[{seen}]; each member once per batch"))
@@ -192,6 +200,13 @@ def _accounts(
     n = len(amounts)
     amount, problems = parse_amounts(amounts, currency)
     issues += [FieldIssue(i, "amount", reason) for i, reason in problems]
+    if not routed_rows and all(c is None for c in contributions):
+        # The usual request: amounts only.
+        for i, a in enumerate(amounts):
+            if a is None:
+                issues.append(FieldIssue(i, "amount", "required unless holdings are given"))
+        none = np.full(n, NOT_HELD, dtype=np.int64)
+        return amount, none, none, np.zeros(n, dtype=np.int64)
     contribution = np.zeros(n, dtype=np.int64)
     given = [i for i, c in enumerate(contributions) if c is not None]
     if given:

@@ -108,6 +108,14 @@ def numbers(column: NDArray[Any]) -> list[str]:
     return text[1:-1].split(",")
 
 
+def number_columns(*columns: NDArray[Any]) -> list[list[str]]:
+    """numbers() of several same-length columns of one dtype, in one orjson call."""
+    if not columns[0].size:
+        return [[] for _ in columns]
+    text: str = orjson.dumps(np.stack(columns), option=orjson.OPT_SERIALIZE_NUMPY).decode()
+    return [row.split(",") for row in text[2:-2].split("],[")]
+
+
 def money_texts(units: Units, currency: str) -> list[str]:
     """Decimal strings ("1250.00", "-3.10") of a column of minor units."""
     exponent = minor_exponent(currency)
@@ -116,9 +124,21 @@ def money_texts(units: Units, currency: str) -> list[str]:
     table = _fraction_texts(exponent)
     whole, frac = np.divmod(np.abs(units), 10**exponent)
     texts = [w + "." + table[f] for w, f in zip(numbers(whole), frac.tolist(), strict=True)]
-    for i in np.flatnonzero(units < 0).tolist():
-        texts[i] = "-" + texts[i]
+    negative = units < 0
+    if negative.any():
+        for i in np.flatnonzero(negative).tolist():
+            texts[i] = "-" + texts[i]
     return texts
+
+
+def money_columns(currency: str, *columns: Units) -> list[list[str]]:
+    """money_texts() of several columns in one pass (one member's answer has eight of them)."""
+    flat = money_texts(np.concatenate(columns) if len(columns) > 1 else columns[0], currency)
+    out, start = [], 0
+    for c in columns:
+        out.append(flat[start : start + c.size])
+        start += c.size
+    return out
 
 
 def risky_units(total: Units, risky_fraction: NDArray[np.float64]) -> Units:
@@ -132,16 +152,14 @@ def split_rows(totals: Units, weights: NDArray[np.float64]) -> Units:
     Floors every exact share, then hands the units still missing to the largest fractional parts
     (ties to the earlier asset), so each row's parts are integers that sum to its total exactly.
     """
-    exact = totals[:, None].astype(np.float64) * weights[None, :]
+    exact = totals[:, None] * weights[None, :]
     floors = np.floor(exact)
     parts = floors.astype(np.int64)
     missing = totals - parts.sum(axis=1)
     # Rank each asset's remainder within its row (stable: ties go to the earlier asset).
-    order = np.argsort(-(exact - floors), axis=1, kind="stable")
-    ranks = np.empty_like(order)
-    np.put_along_axis(ranks, order, np.broadcast_to(np.arange(weights.size), order.shape), axis=1)
+    ranks = np.argsort(np.argsort(floors - exact, axis=1, kind="stable"), axis=1, kind="stable")
     parts += ranks < missing[:, None]
-    # A weight sum a hair above 1 can leave units too many: take them from the smallest remainders.
-    parts -= ranks >= weights.size + missing[:, None]
+    if missing.min(initial=0) < 0:
+        # A weight sum a hair above 1 can leave units too many: take them from the smallest remainders.
+        parts -= ranks >= weights.size + missing[:, None]
     return parts
-

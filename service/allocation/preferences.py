@@ -63,38 +63,61 @@ def _issues(mask: NDArray[np.bool_], field: str, reason: str) -> list[FieldIssue
     return [FieldIssue(int(i), field, reason) for i in np.flatnonzero(mask)]
 
 
+def kinds_present(kind: NDArray[np.int8]) -> NDArray[np.bool_]:
+    """Which preference kinds occur (one pass; np.unique costs more than this on any size)."""
+    return np.bincount(kind, minlength=len(KIND_NAMES)) > 0
+
+
 def check_preferences(p: PreferenceColumns, policy: Policy) -> list[FieldIssue]:
     """Range checks beyond the reader's types, for every member; fields as in the request."""
     k, v = p.kind, p.value
-    ra, tv, ml, rs = k == RISK_AVERSION, k == TARGET_VOLATILITY, k == MAX_LOSS, k == RISK_SCORE
-    found = _issues(ra & ~((v >= 0) & (v <= MAX_RISK_AVERSION)), "preference.risk_aversion",
-                    f"must lie in [0, {MAX_RISK_AVERSION:g}]")
-    found += _issues(tv & ~((v >= 0) & (v <= MAX_TARGET_VOLATILITY)), "preference.target_volatility",
-                     f"must be an annual volatility in [0, {MAX_TARGET_VOLATILITY:g}] (a decimal: 0.12 = 12 %)")
-    found += _issues(ml & ~((v > 0) & (v <= 1.0)), "preference.max_loss",
-                     "must lie in (0, 1]: a fraction of the account (0.15 = 15 %)")
-    found += _issues(ml & ~((p.confidence > 0.5) & (p.confidence < 1.0)), "preference.confidence",
-                     "must lie strictly between 0.5 and 1")
-    found += _issues(ml & ~((p.horizon > 0) & (p.horizon <= MAX_HORIZON_YEARS)), "preference.horizon_years",
-                     f"must lie in (0, {MAX_HORIZON_YEARS:g}] years")
-    if rs.any():
-        if not policy.risk_score_table:
-            found += _issues(rs, "preference.risk_score", "this plan has no risk_score_table to map scores")
+    present = kinds_present(k).tolist()
+    checks: list[tuple[NDArray[np.bool_], str, str]] = []
+    if present[RISK_AVERSION]:
+        checks.append((
+            (k == RISK_AVERSION) & ~((v >= 0) & (v <= MAX_RISK_AVERSION)), "preference.risk_aversion",
+            f"must lie in [0, {MAX_RISK_AVERSION:g}]",
+        ))
+    if present[TARGET_VOLATILITY]:
+        checks.append((
+            (k == TARGET_VOLATILITY) & ~((v >= 0) & (v <= MAX_TARGET_VOLATILITY)), "preference.target_volatility",
+            f"must be an annual volatility in [0, {MAX_TARGET_VOLATILITY:g}] (a decimal: 0.12 = 12 %)",
+        ))
+    if present[MAX_LOSS]:
+        ml = k == MAX_LOSS
+        checks += [
+            (ml & ~((v > 0) & (v <= 1.0)), "preference.max_loss",
+             "must lie in (0, 1]: a fraction of the account (0.15 = 15 %)"),
+            (ml & ~((p.confidence > 0.5) & (p.confidence < 1.0)), "preference.confidence",
+             "must lie strictly between 0.5 and 1"),
+            (ml & ~((p.horizon > 0) & (p.horizon <= MAX_HORIZON_YEARS)), "preference.horizon_years",
+             f"must lie in (0, {MAX_HORIZON_YEARS:g}] years"),
+        ]
+    if present[RISK_SCORE]:
+        rs = k == RISK_SCORE
+        table = sorted(policy.risk_score_table)
+        if not table:
+            checks.append((rs, "preference.risk_score", "this plan has no risk_score_table to map scores"))
         else:
-            known = np.array(sorted(policy.risk_score_table), dtype=float)
-            listed = ", ".join(str(s) for s in sorted(policy.risk_score_table))
-            found += _issues(rs & ~np.isin(v, known), "preference.risk_score",
-                             f"is not a score of the plan's risk_score_table ({listed})")
+            known = (v[:, None] == np.array(table, dtype=float)[None, :]).any(axis=1)
+            listed = ", ".join(str(score) for score in table)
+            checks.append((rs & ~known, "preference.risk_score",
+                           f"is not a score of the plan's risk_score_table ({listed})"))
+    found: list[FieldIssue] = []
+    for mask, field, reason in checks:
+        if mask.any():
+            found += _issues(mask, field, reason)
     return found
 
 
 def _aversion_fraction(a: Floats, line: AllocationLine) -> Floats:
-    variance = line.tangency_volatility**2
-    with np.errstate(divide="ignore"):
-        y = (line.tangency_return - line.risk_free_rate) / (a * variance)
-        if line.borrowing_rate is not None:
-            borrowing = np.maximum(1.0, (line.tangency_return - line.borrowing_rate) / (a * variance))
-            y = np.where(y > 1.0, borrowing, y)
+    # A = 0 asks for unlimited risk (NaN); an A so small that A sigma^2 underflows is +inf.
+    denominator = a * line.tangency_volatility**2
+    positive = denominator > 0.0
+    y = np.divide(line.tangency_return - line.risk_free_rate, denominator, out=np.full(a.shape, np.inf), where=positive)
+    if line.borrowing_rate is not None:
+        borrowing = np.divide(line.tangency_return - line.borrowing_rate, denominator, out=np.full(a.shape, np.inf), where=positive)
+        y = np.where(y > 1.0, np.maximum(1.0, borrowing), y)
     return np.where(a == 0.0, np.nan, y)
 
 
@@ -122,38 +145,39 @@ def _loss_fraction(loss: Floats, confidence: Floats, horizon: Floats, line: Allo
 def wanted_fractions(p: PreferenceColumns, line: AllocationLine, policy: Policy) -> tuple[Floats, list[FieldIssue]]:
     """Each member's y before the policy band (NaN = unlimited), and members no y can satisfy."""
     k = p.kind
-    wanted = np.full(k.shape[0], np.nan)
-    by_aversion = (k == RISK_AVERSION) | (k == RISK_SCORE)
-    if by_aversion.any():
-        a = p.value[by_aversion]
-        scored = k[by_aversion] == RISK_SCORE
-        if scored.any():
-            table = policy.risk_score_table
-            keys = np.array(sorted(table), dtype=float)
-            values = np.array([table[int(s)] for s in keys.tolist()], dtype=float)
-            a = np.where(scored, values[np.searchsorted(keys, a).clip(0, max(len(keys) - 1, 0))], a)
-        wanted[by_aversion] = _aversion_fraction(a, line)
-    tv = k == TARGET_VOLATILITY
-    if tv.any():
-        wanted[tv] = p.value[tv] / line.tangency_volatility
-    ml = k == MAX_LOSS
+    present = kinds_present(k).tolist()
+    a = p.value
+    if present[RISK_SCORE]:
+        table = policy.risk_score_table
+        keys = np.array(sorted(table), dtype=float)
+        values = np.array([table[int(s)] for s in keys.tolist()], dtype=float)
+        at = np.searchsorted(keys, a).clip(0, len(keys) - 1)
+        a = np.where(k == RISK_SCORE, values[at], a)
+    # Every kind's formula on every row (a few flops each), then one choice by mask: cheaper than
+    # gathering rows per kind, and the same code for one member or many.
+    wanted = _aversion_fraction(a, line) if present[RISK_AVERSION] or present[RISK_SCORE] else a
+    if present[TARGET_VOLATILITY]:
+        wanted = np.where(k == TARGET_VOLATILITY, p.value / line.tangency_volatility, wanted)
     issues: list[FieldIssue] = []
-    if ml.any():
-        wanted[ml] = _loss_fraction(p.value[ml], p.confidence[ml], p.horizon[ml], line)
-        impossible = np.zeros(k.shape[0], dtype=bool)
-        impossible[ml] = np.isneginf(wanted[ml])
-        issues = _issues(
-            impossible, "preference.max_loss",
-            "no risky fraction keeps the chance of this loss within 1 - confidence over the horizon: "
-            f"even the safe holding fails it at the mix's risk-free rate of {line.risk_free_rate}",
-        )
+    if present[MAX_LOSS]:
+        ml = k == MAX_LOSS
+        # Other kinds' rows get a harmless confidence for the quantile; their results are not used.
+        loss = _loss_fraction(p.value, np.where(ml, p.confidence, 0.75), p.horizon, line)
+        wanted = np.where(ml, loss, wanted)
+        impossible = ml & np.isneginf(loss)
+        if impossible.any():
+            issues = _issues(
+                impossible, "preference.max_loss",
+                "no risky fraction keeps the chance of this loss within 1 - confidence over the horizon: "
+                f"even the safe holding fails it at the mix's risk-free rate of {line.risk_free_rate}",
+            )
     return wanted, issues
 
 
 def bound_by_policy(wanted: Floats, policy: Policy) -> Fractions:
     lo, hi = policy.min_risky_fraction, policy.max_risky_fraction
-    over = np.isnan(wanted) | (wanted > hi)
-    under = ~over & (wanted < lo)
+    over = ~(wanted <= hi)  # NaN (unlimited) counts as over
+    under = wanted < lo
     y = np.where(over, hi, np.where(under, lo, wanted))
-    limited = np.where(over, LIMIT_MAX, np.where(under, LIMIT_MIN, LIMIT_NONE)).astype(np.int8)
+    limited = (over * LIMIT_MAX + under * LIMIT_MIN).astype(np.int8)
     return Fractions(y, wanted, limited)

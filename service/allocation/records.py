@@ -22,7 +22,7 @@ import orjson
 from numpy.typing import NDArray
 
 from .members import NOT_HELD
-from .money import Units, numbers
+from .money import Units, number_columns, numbers
 from .preferences import (
     LIMIT_NAMES,
     MAX_LOSS,
@@ -30,6 +30,7 @@ from .preferences import (
     RISK_SCORE,
     TARGET_VOLATILITY,
     PreferenceColumns,
+    kinds_present,
 )
 
 RECORD_FORM = "mixline.allocation.v1"
@@ -80,6 +81,8 @@ class Decisions:
         return self.held_risky != NOT_HELD
 
     def rows(self, selection: slice) -> Decisions:
+        if selection == slice(None):
+            return self
         return Decisions(*(getattr(self, f.name)[selection] for f in fields(self)))
 
 
@@ -87,7 +90,7 @@ def preference_texts(p: PreferenceColumns) -> list[str]:
     """Each member's preference as the record keeps it (sorted keys; max_loss with its horizon)."""
     value = numbers(p.value)
     out = [""] * p.kind.shape[0]
-    for kind in np.unique(p.kind).tolist():
+    for kind in np.flatnonzero(kinds_present(p.kind)).tolist():
         rows = np.flatnonzero(p.kind == kind).tolist()
         if kind == RISK_AVERSION:
             texts = ['{"risk_aversion":' + value[i] + "}" for i in rows]
@@ -113,10 +116,6 @@ def _json(value: str) -> str:
     return orjson.dumps(value).decode()
 
 
-def _pairs(a: Units, b: Units) -> list[str]:
-    return [f"{x},{y}" for x, y in zip(numbers(a), numbers(b), strict=True)]
-
-
 def number_rows(matrix: Units) -> list[str]:
     """The inside of each row's JSON array, e.g. "12,7,0"."""
     if matrix.shape[0] == 0:
@@ -132,15 +131,14 @@ def record_texts(ctx: Context, d: Decisions) -> list[str]:
     member id pattern and our allocation ids ensure it)."""
     n = d.size
     routed_a, routed_b = [""] * n, [""] * n
-    rows = np.flatnonzero(d.routed).tolist()
-    if rows:
-        pick = np.array(rows)
-        contribution = numbers(d.contribution[pick])
-        split = _pairs(d.to_risky[pick], d.to_safe[pick])
-        held = _pairs(d.held_risky[pick], d.held_safe[pick])
-        for j, i in enumerate(rows):
-            routed_a[i] = f'"contribution_minor":{contribution[j]},"contribution_split_minor":[{split[j]}],'
-            routed_b[i] = f'"holdings_minor":[{held[j]}],'
+    if d.routed.any():
+        rows = np.flatnonzero(d.routed)
+        contribution, to_r, to_s, held_r, held_s = number_columns(
+            d.contribution[rows], d.to_risky[rows], d.to_safe[rows], d.held_risky[rows], d.held_safe[rows]
+        )
+        for j, i in enumerate(rows.tolist()):
+            routed_a[i] = f'"contribution_minor":{contribution[j]},"contribution_split_minor":[{to_r[j]},{to_s[j]}],'
+            routed_b[i] = f'"holdings_minor":[{held_r[j]},{held_s[j]}],'
     shared = (
         f'"created_at":{_json(ctx.created_at)},"currency":{_json(ctx.currency)},'
         f'"disclosures_version":{_json(ctx.disclosures_version)},'
@@ -151,25 +149,15 @@ def record_texts(ctx: Context, d: Decisions) -> list[str]:
         f'"plan_id":{_json(ctx.plan_id)},'
     )
     limits = LIMIT_TEXTS
+    amount, risky, safe = number_columns(d.amount, d.risky, d.safe)
+    e, y, u, v = number_columns(d.expected_return, d.risky_fraction, d.unconstrained, d.volatility)
     return [
-        f'{{"allocation_id":"{a}","amount_minor":{b},"by_asset_minor":[{c}],{ra}{shared}"expected_return":{e},'
-        f'{form}{rb}"limited_by":{limits[lb]},"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{y},'
-        f'"split_minor":[{s}],"unconstrained_risky_fraction":{u},"volatility":{v}}}'
-        for a, b, c, ra, e, rb, lb, m, p, y, s, u, v in zip(
-            d.allocation_ids,
-            numbers(d.amount),
-            number_rows(d.by_asset),
-            routed_a,
-            numbers(d.expected_return),
-            routed_b,
-            d.limited.tolist(),
-            d.member_ids,
-            d.preference_texts,
-            numbers(d.risky_fraction),
-            _pairs(d.risky, d.safe),
-            numbers(d.unconstrained),
-            numbers(d.volatility),
-            strict=True,
+        f'{{"allocation_id":"{a}","amount_minor":{b},"by_asset_minor":[{c}],{ra}{shared}"expected_return":{ee},'
+        f'{form}{rb}"limited_by":{limits[lb]},"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{yy},'
+        f'"split_minor":[{r},{s}],"unconstrained_risky_fraction":{uu},"volatility":{vv}}}'
+        for a, b, c, ra, ee, rb, lb, m, p, yy, r, s, uu, vv in zip(
+            d.allocation_ids, amount, number_rows(d.by_asset), routed_a, e, routed_b, d.limited.tolist(),
+            d.member_ids, d.preference_texts, y, risky, safe, u, v, strict=True,
         )
     ]
 

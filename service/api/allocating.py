@@ -10,8 +10,8 @@ transaction, so that writing record text, hashing and the database's own work ov
 from __future__ import annotations
 
 import asyncio
-from datetime import UTC, datetime
-from functools import partial
+from collections.abc import Awaitable
+from concurrent.futures import Future
 from typing import Any
 
 import orjson
@@ -19,31 +19,27 @@ from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
 from service.allocation import (
-    AllocationIds,
     Allocations,
-    answer_texts,
+    FieldIssue,
+    MemberErrors,
     allocate,
+    answer_texts,
     decisions_from_record,
+    read_batch,
+    read_single,
+    single_field,
 )
-from service.allocation.issues import FieldIssue, MemberErrors, single_field
-from service.allocation.requests import read_batch, read_single
 from service.store import LogBatch, LogStream
 
 from . import idempotency
 from .auth import Caller
 from .responses import raw_json_response
+from .deciding import allocation_ids, utc_now_text
 from .state import AppState
 
 # Rows handed to the log writer at a time: big enough that each chunk is a few C calls, small
 # enough that the writer starts inserting almost at once. Requests up to this size are one job.
 CHUNK = 8192
-
-allocation_ids = AllocationIds()
-
-
-def utc_now_text() -> str:
-    return datetime.now(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
-
 
 def _json(raw: bytes) -> Any:
     try:
@@ -53,11 +49,10 @@ def _json(raw: bytes) -> Any:
         raise MemberErrors([issue], single_field) from None
 
 
-def prepare(state: AppState, plan_id: str, raw: bytes, *, batch: bool) -> Allocations:
-    """Read, check and decide every member; nothing is written (a refused request logs nothing)."""
+def prepare_batch(state: AppState, plan_id: str, raw: bytes) -> Allocations:
+    """Read, check and decide every member of a batch; nothing is written (a refused batch logs nothing)."""
     plan = state.plan(plan_id)
-    doc = _json(raw)
-    request = read_batch(doc, state.settings.batch_limit) if batch else read_single(doc)
+    request = read_batch(_json(raw), state.settings.batch_limit)
     return allocate(
         request.members,
         plan_id=plan_id,
@@ -70,9 +65,8 @@ def prepare(state: AppState, plan_id: str, raw: bytes, *, batch: bool) -> Alloca
     )
 
 
-def answer_body(prepared: Allocations, *, batch: bool) -> bytes:
-    if not batch:
-        return prepared.answers(inline_disclosures=True)[0].encode()
+def answer_body(prepared: Allocations) -> bytes:
+    """A batch's answer: what all results share, then every member's result in order."""
     parts = [prepared.batch_head()]
     for start in range(0, prepared.size, CHUNK):
         texts = prepared.answers(slice(start, start + CHUNK), inline_disclosures=False)
@@ -89,7 +83,7 @@ def _feed(prepared: Allocations, stream: LogStream, owned: idempotency.Claim | N
         for start in range(0, prepared.size, CHUNK):
             rows = slice(start, start + CHUNK)
             stream.put(d.allocation_ids[rows], d.member_ids[rows], prepared.records(rows))
-        payload = answer_body(prepared, batch=True)
+        payload = answer_body(prepared)
         stream.finish(None if owned is None else owned.completion(201, payload))
         return payload
     except BaseException as error:
@@ -97,38 +91,64 @@ def _feed(prepared: Allocations, stream: LogStream, owned: idempotency.Claim | N
         raise
 
 
-async def allocate_and_log(
-    state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None, *, batch: bool
+async def allocate_one(
+    state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None
 ) -> Response:
     caller.require(plan_id, "portal")
-    work = partial(prepare, state, plan_id, raw, batch=batch)
-    # A single member takes microseconds; a batch's reading and rules are CPU work off the loop.
-    prepared = await run_in_threadpool(work) if batch else work()
+    plan = state.plan(plan_id)
+    request = read_single(_json(raw))
+    view = state.mixes.view_in_force(plan_id, request.mix_version)
+    decided = await state.singles.decide(plan_id, plan.currency, plan.policy, view, request.members[0])
+    owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
+    if isinstance(owned, Response):
+        return owned
+    ctx = decided.context
+    job = LogBatch(
+        ctx.plan_id, ctx.mix_version, ctx.created_at, [decided.allocation_id], [decided.member_id],
+        [decided.record], None if owned is None else owned.completion(201, decided.answer),
+    )
+    await _log(state, owned, state.db.writer.submit(job))
+    state.metrics.allocations.labels(plan_id).inc()
+    location = f"/v1/plans/{plan_id}/allocations/{decided.allocation_id}"
+    return raw_json_response(decided.answer, 201, headers={"Location": location})
+
+
+async def allocate_batch(
+    state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None
+) -> Response:
+    caller.require(plan_id, "portal")
+    prepared = await run_in_threadpool(prepare_batch, state, plan_id, raw)
     owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
     if isinstance(owned, Response):
         return owned
     ctx, d = prepared.context, prepared.decisions
+    if prepared.size <= CHUNK:
+        payload = answer_body(prepared)
+        job = LogBatch(
+            ctx.plan_id, ctx.mix_version, ctx.created_at, d.allocation_ids, d.member_ids, prepared.records(),
+            None if owned is None else owned.completion(201, payload),
+        )
+        await _log(state, owned, state.db.writer.submit(job))
+    else:
+        stream = LogStream(ctx.plan_id, ctx.mix_version, ctx.created_at, prepared.size)
+        payload = await _log(state, owned, state.db.writer.submit_stream(stream),
+                             run_in_threadpool(_feed, prepared, stream, owned))
+    state.metrics.allocations.labels(plan_id).inc(prepared.size)
+    return raw_json_response(payload, 201)
+
+
+async def _log(
+    state: AppState, owned: idempotency.Claim | None, committed: Future[None], feeding: Awaitable[bytes] | None = None
+) -> bytes:
+    """Wait until the rows are committed: no answer leaves before its log rows exist."""
     try:
-        if prepared.size <= CHUNK:
-            payload = answer_body(prepared, batch=batch)
-            job = LogBatch(
-                ctx.plan_id, ctx.mix_version, ctx.created_at, d.allocation_ids, d.member_ids, prepared.records(),
-                None if owned is None else owned.completion(201, payload),
-            )
-            # The answer goes out only once its log rows are committed: no unlogged recommendation.
-            await asyncio.wrap_future(state.db.writer.submit(job))
-        else:
-            stream = LogStream(ctx.plan_id, ctx.mix_version, ctx.created_at, prepared.size)
-            committed = state.db.writer.submit_stream(stream)
-            payload = await run_in_threadpool(_feed, prepared, stream, owned)
-            await asyncio.wrap_future(committed)
+        payload = b"" if feeding is None else await feeding
+        await asyncio.wrap_future(committed)
+        return payload
     except BaseException:
         if owned is not None:
             await idempotency.give_up(state, owned)
         raise
-    state.metrics.allocations.labels(plan_id).inc(prepared.size)
-    headers = None if batch else {"Location": f"/v1/plans/{plan_id}/allocations/{d.allocation_ids[0]}"}
-    return raw_json_response(payload, 201, headers=headers)
 
 
 def rendered(state: AppState, plan_id: str, stored: str) -> bytes:

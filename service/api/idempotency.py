@@ -20,9 +20,6 @@ import re
 import time
 from dataclasses import dataclass
 
-from typing import Annotated
-
-from fastapi import Header
 from starlette.responses import Response
 
 from service.store import IdempotencyCompletion, KeyRelease, KeyReservation
@@ -31,13 +28,13 @@ from .auth import Caller
 from .errors import ConflictError, ProblemError, Unprocessable
 from .state import AppState
 
-KeyHeader = Annotated[
-    str | None,
-    Header(
-        alias="Idempotency-Key",
-        description='Optional. A retry with the same key and body returns the first answer; e.g. "8e03-41a2"',
-    ),
-]
+HEADER_PARAMETER = {
+    "name": "Idempotency-Key",
+    "in": "header",
+    "required": False,
+    "description": 'Optional. A retry with the same key and body returns the first answer; e.g. "8e03-41a2"',
+    "schema": {"type": "string", "minLength": 1, "maxLength": 257},
+}
 # An RFC 8941 sf-string, as the draft asks ("..."); a bare token is accepted too.
 _VALUE = re.compile(r'"([\x20-\x21\x23-\x5b\x5d-\x7e]{1,255})"|([\x21\x23-\x7e]{1,255})')
 

@@ -55,6 +55,7 @@ from service.store import (
 )
 
 from .auth import KeyRing
+from .deciding import SinglesTogether
 from .errors import ConflictError, NotFound, PayloadTooLarge
 from .metrics import Metrics
 from .schemas import MixIn
@@ -329,6 +330,7 @@ class AppState:
         self.db = database
         self.keys = KeyRing()
         self.mixes = MixCatalog(database, settings, metrics)
+        self.singles = SinglesTogether()
         self._plans: dict[str, PlanView] = {}
 
     def load_key(self, key_id: str) -> KeyRecord | None:

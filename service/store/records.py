@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import queue
+import secrets
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -67,10 +68,11 @@ class IdempotencyCompletion:
 
 @dataclass(frozen=True)
 class LogBatch:
-    """Rows to append to one plan's chain, in order.
+    """Rows to append to one plan's chain, in order, in one transaction.
 
     ``created_at`` is ISO-8601 UTC text (e.g. "2026-12-01T21:42:52.123456Z") and is
     hashed exactly as given; ``bodies`` are canonical JSON texts, one per allocation.
+    ``batch_id`` marks the rows of a LogStream's chunk (None for rows visible at once).
     """
 
     plan_id: str
@@ -80,6 +82,7 @@ class LogBatch:
     member_ids: Sequence[str]
     bodies: Sequence[str]
     completes: IdempotencyCompletion | None = None
+    batch_id: str | None = None
 
     def triples(self) -> Iterator[tuple[str, str, str]]:
         return zip(self.allocation_ids, self.member_ids, self.bodies, strict=True)
@@ -88,12 +91,22 @@ class LogBatch:
         return self.completes
 
 
-class LogStream:
-    """A batch whose rows arrive in chunks from another thread while the writer inserts them.
+# States of a LogStream's batch (allocation_batches.state).
+STAGED, VISIBLE, ABANDONED = "staged", "visible", "abandoned"
 
-    The producer calls ``put`` until ``size`` rows were given, or ``fail`` to abandon the batch
-    (the writer then rolls back: nothing of it is logged). The writer gives each stream a
-    transaction of its own. Chunks are checked for the field separator as they arrive.
+
+class LogStream:
+    """A large batch whose rows arrive in chunks from another thread: all or nothing, without
+    holding the log for the whole batch.
+
+    The writer commits each chunk in a transaction of its own as it arrives, the rows marked
+    with ``batch_id`` and chained like any others, and writes other requests' rows between
+    chunks, so nobody waits for the whole batch. Reads do not see the rows until the batch is
+    made visible, in one step, by the transaction that follows the last chunk (with its
+    Idempotency-Key answer, if any). A batch that fails is marked abandoned: its rows stay in
+    the chain, which never forgets, but no read returns them.
+
+    The producer calls ``put`` until ``size`` rows were given, then ``finish``; or ``fail``.
     """
 
     def __init__(self, plan_id: str, mix_version: str, created_at: str, size: int, *, wait_seconds: float = 300.0) -> None:
@@ -101,8 +114,10 @@ class LogStream:
         self.mix_version = mix_version
         self.created_at = created_at
         self.size = size
+        self.batch_id = f"ab_{secrets.token_hex(12)}"
         self._wait = wait_seconds
         self._chunks: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self._seen = 0
 
     def put(self, allocation_ids: Sequence[str], member_ids: Sequence[str], bodies: Sequence[str]) -> None:
         if not len(allocation_ids) == len(member_ids) == len(bodies):
@@ -113,40 +128,35 @@ class LogStream:
         self._chunks.put(error)
 
     def finish(self, completes: IdempotencyCompletion | None = None) -> None:
-        """After the last rows: the writer commits once this arrives (with what it completes)."""
-        self._chunks.put(_Finish(completes))
+        """After the last rows: the writer then makes the batch visible (with what it completes)."""
+        self._chunks.put(Finished(completes))
 
-    def completion(self) -> IdempotencyCompletion | None:
-        """Blocks until the producer finished; called by the writer after the last row."""
-        chunk = self._next()
-        if isinstance(chunk, _Finish):
-            return chunk.completes
-        raise ValueError(f"stream sent more than the {self.size} rows it announced")
-
-    def _next(self) -> Any:
+    def next_chunk(self, timeout: float) -> LogBatch | Finished | None:
+        """The next chunk as a LogBatch, the finish, or None if nothing came within ``timeout``.
+        Raises the producer's error, or TimeoutError when the producer went quiet for too long."""
         try:
-            chunk = self._chunks.get(timeout=self._wait)
+            chunk = self._chunks.get(timeout=timeout)
         except queue.Empty:
-            raise TimeoutError(f"no rows for {self._wait} s; the batch is abandoned") from None
+            return None
         if isinstance(chunk, BaseException):
             raise chunk
-        return chunk
+        if isinstance(chunk, Finished):
+            if self._seen != self.size:
+                raise ValueError(f"stream finished after {self._seen} of {self.size} rows")
+            return chunk
+        ids, members, bodies = chunk
+        for name, values in (("allocation_ids", ids), ("member_ids", members), ("bodies", bodies)):
+            # One join per chunk finds a separator (or a non-string) in C, not row by row.
+            if "\x1f" in "".join(values):
+                raise ValueError(f"stream {name} contain the U+001F separator")
+        self._seen += len(ids)
+        if self._seen > self.size:
+            raise ValueError(f"stream announced {self.size} rows and sent {self._seen}")
+        return LogBatch(self.plan_id, self.mix_version, self.created_at, ids, members, bodies, batch_id=self.batch_id)
 
-    def triples(self) -> Iterator[tuple[str, str, str]]:
-        seen = 0
-        while seen < self.size:
-            chunk = self._next()
-            if isinstance(chunk, _Finish):
-                raise ValueError(f"stream finished after {seen} of {self.size} rows")
-            ids, members, bodies = chunk
-            for name, values in (("allocation_ids", ids), ("member_ids", members), ("bodies", bodies)):
-                # One join per chunk finds a separator (or a non-string) in C, not row by row.
-                if "\x1f" in "".join(values):
-                    raise ValueError(f"stream {name} contain the U+001F separator")
-            seen += len(ids)
-            if seen > self.size:
-                raise ValueError(f"stream announced {self.size} rows and sent {seen}")
-            yield from zip(ids, members, bodies, strict=True)
+    @property
+    def wait_seconds(self) -> float:
+        return self._wait
 
 
 @dataclass(frozen=True)
@@ -174,5 +184,5 @@ class ChainReport:
 
 
 @dataclass(frozen=True)
-class _Finish:
+class Finished:
     completes: IdempotencyCompletion | None

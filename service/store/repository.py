@@ -13,14 +13,15 @@ from datetime import datetime
 from typing import Any
 
 import orjson
-from sqlalchemy import Insert, select, update
+from sqlalchemy import Insert, exists, or_, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from service.store.errors import Conflict
-from service.store.records import KeyRecord, MixLifecycle, MixRecord, PlanRecord
+from service.store.records import VISIBLE, KeyRecord, MixLifecycle, MixRecord, PlanRecord
 from service.store.schema import (
     Allocation,
+    AllocationBatch,
     ApiKey,
     Mix,
     Plan,
@@ -244,10 +245,20 @@ def record_retirement(s: Session, plan_id: str, version: str, *, key_id: str, at
     )
 
 
+def _visible() -> Any:
+    """A logged row counts unless it belongs to a batch not (or never) made visible."""
+    return or_(
+        Allocation.batch_id.is_(None),
+        exists().where(
+            AllocationBatch.batch_id == Allocation.batch_id, AllocationBatch.state == VISIBLE
+        ),
+    )
+
+
 def get_allocation(s: Session, plan_id: str, allocation_id: str) -> str | None:
     return s.execute(
         select(Allocation.body).where(
-            Allocation.allocation_id == allocation_id, Allocation.plan_id == plan_id
+            Allocation.allocation_id == allocation_id, Allocation.plan_id == plan_id, _visible()
         )
     ).scalar_one_or_none()
 
@@ -257,7 +268,7 @@ def list_allocations(s: Session, plan_id: str, member_id: str, *, limit: int = 1
     return list(
         s.execute(
             select(Allocation.body)
-            .where(Allocation.plan_id == plan_id, Allocation.member_id == member_id)
+            .where(Allocation.plan_id == plan_id, Allocation.member_id == member_id, _visible())
             .order_by(Allocation.seq.desc())
             .limit(limit)
         ).scalars()

@@ -144,6 +144,20 @@ class Allocation(Base):
     body: Mapped[str] = mapped_column(Text)
     prev_hash: Mapped[str] = mapped_column(CHAR(64))
     row_hash: Mapped[str] = mapped_column(CHAR(64))
+    # Set for the rows of a batch written in chunks: they count once their batch is visible.
+    batch_id: Mapped[str | None] = mapped_column(String(), nullable=True)
+
+
+class AllocationBatch(Base):
+    """A batch whose rows were committed in chunks; `state` staged -> visible (or abandoned)."""
+
+    __tablename__ = "allocation_batches"
+
+    batch_id: Mapped[str] = mapped_column(String(), primary_key=True)
+    plan_id: Mapped[str] = mapped_column(String(), ForeignKey("plans.plan_id"))
+    rows: Mapped[int] = mapped_column(BigInteger)
+    state: Mapped[str] = mapped_column(String())
+    created_at: Mapped[str] = mapped_column(String())
 
 
 class ChainHead(Base):

@@ -42,11 +42,19 @@ from service.store.idempotency import (
     purge,
 )
 from service.store.idempotency import run as run_key_operation
-from service.store.records import LogBatch, LogStream
+from service.store.records import (
+    ABANDONED,
+    STAGED,
+    VISIBLE,
+    Finished,
+    IdempotencyCompletion,
+    LogBatch,
+    LogStream,
+)
 from service.store.wal_checkpoints import WalCheckpointer
 
 _COLUMNS = (
-    "plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash"
+    "plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash, batch_id"
 )
 # Below this many rows a pipelined executemany beats setting up COPY.
 _COPY_MIN_ROWS = 2_000
@@ -71,7 +79,7 @@ class _Job:
 
     @property
     def alone(self) -> bool:
-        """A stream can be read once: it gets its own transaction and is never retried."""
+        """A stream is written chunk by chunk (see ChainWriter._write_stream), not in a group."""
         return isinstance(self.batch, LogStream)
 
 
@@ -102,8 +110,8 @@ def _check_batch(batch: LogBatch) -> int:
 
 
 def _links(
-    batch: LogBatch | LogStream, seq: int, prev_hash: str
-) -> Iterator[tuple[str, int, str, str, str, str, str, str, str]]:
+    batch: LogBatch, seq: int, prev_hash: str
+) -> Iterator[tuple[str, int, str, str, str, str, str, str, str, str | None]]:
     """The batch's rows with seq and hashes, continuing the chain from (seq, prev_hash).
 
     The text hashed is exactly chain.link_hash's (a test holds them equal); it is written out
@@ -112,6 +120,7 @@ def _links(
     plan_id = batch.plan_id
     mix_version = batch.mix_version
     created_at = batch.created_at
+    batch_id = batch.batch_id
     sep = SEPARATOR
     sha256 = hashlib.sha256
     for allocation_id, member_id, body in batch.triples():
@@ -120,7 +129,7 @@ def _links(
             f"{prev_hash}{sep}{plan_id}{sep}{seq}{sep}{allocation_id}{sep}{member_id}{sep}"
             f"{mix_version}{sep}{created_at}{sep}{body}".encode()
         ).hexdigest()
-        yield (plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash)
+        yield (plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash, batch_id)
         prev_hash = row_hash
 
 
@@ -134,7 +143,7 @@ class _Chains:
         for job in jobs:
             if not job.logs:
                 continue
-            assert isinstance(job.batch, LogBatch | LogStream)
+            assert isinstance(job.batch, LogBatch)
             plan_id = job.batch.plan_id
             seq, prev_hash = self.heads[plan_id]
             for row in _links(job.batch, seq, prev_hash):
@@ -147,7 +156,7 @@ def _completions(jobs: Iterable[_Job]) -> list[tuple[int, str, str, str, str]]:
     """Idempotency answers to store with these rows (a stream's arrives after its last row)."""
     found = []
     for job in jobs:
-        if not isinstance(job.batch, LogBatch | LogStream):
+        if not isinstance(job.batch, LogBatch):
             continue
         completes = job.batch.completion()
         if completes is not None:
@@ -283,6 +292,12 @@ class ChainWriter:
             if first is _STOP:
                 return
             in_flight[:] = [first]
+            if first.alone:
+                if first.future.set_running_or_notify_cancel():
+                    stopping = self._write_stream(first, in_flight)
+                    if stopping:
+                        return
+                continue
             group, carried, stopping = self._gather(first, recent_jobs, recent_write_seconds)
             in_flight[:] = group if carried is None else [*group, carried]
             recent_jobs = len(group)
@@ -334,6 +349,88 @@ class ChainWriter:
             group.append(job)
             rows += job.size
         return group, None, False
+
+    # Rows of other requests are written between a stream's chunks; a chunk stays small so that
+    # they wait for at most one chunk's transaction.
+    STREAM_POLL_SECONDS = 0.002
+
+    def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
+        """A LogStream: each chunk in its own transaction, other jobs between chunks, then the
+        batch made visible in one step. Returns True if a stop was asked for meanwhile."""
+        stream = job.batch
+        assert isinstance(stream, LogStream)
+        deferred: list[Any] = []
+        stopping = False
+        try:
+            self._batch_state(stream, STAGED, None, opening=True)
+            while True:
+                chunk = stream.next_chunk(self.STREAM_POLL_SECONDS)
+                if isinstance(chunk, Finished):
+                    break
+                if chunk is not None:
+                    self._write_retrying([_Job(chunk, len(chunk.allocation_ids), Future())])
+                stopping = self._serve_waiting(deferred, in_flight) or stopping
+            self._batch_state(stream, VISIBLE, chunk.completes)
+        except BaseException as error:
+            try:
+                self._batch_state(stream, ABANDONED, None)
+            except Exception:
+                pass  # the rows stay invisible either way (their batch is not visible)
+            job.future.set_exception(error)
+        else:
+            job.future.set_result(None)
+        for waiting in deferred:
+            self._queue.put(waiting)  # later streams, and a stop, keep their turn
+        return stopping and not deferred
+
+    def _serve_waiting(self, deferred: list[Any], in_flight: list[_Job]) -> bool:
+        """Write every non-stream job already waiting, as one group; True if a stop came."""
+        group: list[_Job] = []
+        stopping = False
+        while True:
+            try:
+                waiting = self._queue.get_nowait()
+            except queue.Empty:
+                break
+            if waiting is _STOP:
+                stopping = True
+                deferred.append(waiting)
+            elif waiting.alone:
+                deferred.append(waiting)
+            else:
+                group.append(waiting)
+        if group:
+            in_flight.extend(group)
+            self._write_group([j for j in group if j.future.set_running_or_notify_cancel()])
+            del in_flight[1:]
+        return stopping
+
+    def _batch_state(
+        self, stream: LogStream, state: str, completes: IdempotencyCompletion | None, *, opening: bool = False
+    ) -> None:
+        """Record a stream's batch (opening) or move it to `state`, in one transaction."""
+        dbapi = self._checkout().driver_connection
+        p = "?" if self._dialect == "sqlite" else "%s"
+        try:
+            if self._dialect == "sqlite":
+                dbapi.execute("BEGIN IMMEDIATE")
+            cursor = dbapi.cursor()
+            if opening:
+                cursor.execute(
+                    f"INSERT INTO allocation_batches (batch_id, plan_id, rows, state, created_at) "
+                    f"VALUES ({p}, {p}, {p}, {p}, {p})",
+                    (stream.batch_id, stream.plan_id, stream.size, state, stream.created_at),
+                )
+            else:
+                cursor.execute(
+                    f"UPDATE allocation_batches SET state = {p} WHERE batch_id = {p}", (state, stream.batch_id)
+                )
+            if completes is not None:
+                cursor.execute(COMPLETE_SQL.format(p=p), completion_parameters(completes))
+            dbapi.commit()
+        except BaseException:
+            self._rollback(dbapi)
+            raise
 
     def _write_group(self, group: list[_Job]) -> None:
         if not group:
@@ -434,7 +531,7 @@ class ChainWriter:
             heads[plan_id] = (found[0], found[1]) if found is not None else (0, GENESIS_HASH)
         chains = _Chains(heads)
         dbapi.executemany(
-            f"INSERT INTO allocations ({_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            f"INSERT INTO allocations ({_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             chains.rows(jobs),
         )
         dbapi.executemany(
@@ -484,7 +581,7 @@ class ChainWriter:
             with dbapi.pipeline():
                 cursor.executemany(
                     f"INSERT INTO allocations ({_COLUMNS}) "
-                    "VALUES (%s, %s, %s, %s, %s, %s, %s, %s, %s)",
+                    "VALUES (%s, %s, %s, %s, %s, %s, %s, %s, %s, %s)",
                     rows,
                 )
                 cursor.executemany(move_heads, _head_rows(chains))

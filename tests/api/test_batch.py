@@ -147,3 +147,20 @@ async def test_batch_limit_is_413(world: World, new_plan_id: str) -> None:
                              json={"mix_version": DEMO_MIX["version"], "members": [member(i) for i in range(6)]}, headers=keys["portal"])
             assert r.status_code == 413 and r.headers["content-type"].startswith("application/problem+json")
     assert await checked(world, new_plan_id, keys) == 0
+
+
+async def test_a_batch_larger_than_one_chunk_is_staged_then_visible(world: World, new_plan_id: str) -> None:
+    from service.api.allocating import CHUNK
+
+    keys = await setup(world, new_plan_id)
+    n = CHUNK + 808  # two chunks for the log writer
+    members = [member(i) for i in range(n)]
+    r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations/batch",
+                                json={"mix_version": DEMO_MIX["version"], "members": members}, headers=keys["portal"])
+    assert r.status_code == 201, r.text[:300]
+    results = r.json()["results"]
+    assert len(results) == n and [x["member_id"] for x in results[-3:]] == [m["member_id"] for m in members[-3:]]
+    for res in (results[0], results[CHUNK], results[-1]):
+        back = await world.client.get(f"/v1/plans/{new_plan_id}/allocations/{res['allocation_id']}", headers=keys["portal"])
+        assert back.status_code == 200 and back.json()["amounts"] == res["amounts"]
+    assert await checked(world, new_plan_id, keys) == n

@@ -334,3 +334,31 @@ async def test_frontier_corpus(limited: Any, case: str, points: str) -> None:
     c, keys, plan_id = limited
     r = await c.get(f"/v1/plans/{plan_id}/mixes/{DEMO_MIX['version']}/frontier", params={"points": points}, headers={"Authorization": keys["portal"]})
     check(r)
+
+
+async def _chunks(total: int, size: int = 16_384) -> AsyncIterator[bytes]:
+    # A JSON string that never ends: only the count of bytes received can stop it.
+    yield b'{"member_id": "'
+    sent = 0
+    while sent < total:
+        yield b"x" * size
+        sent += size
+
+
+@pytest.mark.parametrize(
+    ("route", "role"),
+    [("/v1/plans", "operator"), ("/v1/plans/{plan}/keys", "operator"), ("/v1/plans/{plan}/mixes", "committee"),
+     ("/v1/plans/{plan}/allocations", "portal"), ("/v1/plans/{plan}/allocations/batch", "portal")],
+)
+async def test_chunked_body_over_the_limit_is_413_on_every_route(limited: Any, route: str, role: str) -> None:
+    c, keys, plan_id = limited
+    limit = SMALL_LIMITS["max_body_bytes"]
+    url = route.format(plan=plan_id)
+    # An iterator body is sent chunked, without Content-Length: the limit must count the bytes.
+    r = await c.post(url, content=_chunks(2 * limit), headers={"Authorization": keys[role], "Content-Type": "application/json"})
+    assert "content-length" not in r.request.headers
+    assert r.status_code == 413, r.text
+    assert r.headers["content-type"].startswith("application/problem+json")
+    # Under the limit the same route answers as usual (a 4xx for this body, never the 413).
+    small = await c.post(url, content=_chunks(limit // 4), headers={"Authorization": keys[role], "Content-Type": "application/json"})
+    assert small.status_code != 413 and small.status_code < 500, small.text

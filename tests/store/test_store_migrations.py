@@ -14,7 +14,7 @@ from service.store.revisions import downgrade, script_heads
 from service.store.schema import Base
 
 EXPECTED_TABLES = {
-    "alembic_version", "allocations", "api_keys", "chain_heads", "frontiers", "idempotency_keys", "mixes",
+    "alembic_version", "allocation_batches", "allocations", "api_keys", "chain_heads", "frontiers", "idempotency_keys", "mixes",
     "plans",
 }
 
@@ -57,7 +57,7 @@ def test_models_match_the_migrations(db_url: str) -> None:
 
 
 def test_one_head_shipped_as_package_data() -> None:
-    assert script_heads() == frozenset({"0004"})
+    assert script_heads() == frozenset({"0005"})
     migrations = Path(__file__).resolve().parents[2] / "service" / "store" / "migrations"
     assert (migrations / "env.py").is_file()
 
