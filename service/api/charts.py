@@ -15,6 +15,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 _drawing = threading.Lock()
+MAX_LABELLED_ASSETS = 12
 
 
 @dataclass(frozen=True)
@@ -56,7 +57,8 @@ def frontier_svg(chart: FrontierChart) -> str:
                 color="#b35900", linestyle="--", linewidth=1.4, label="capital allocation line", zorder=1)
         ax.scatter([a.volatility for a in chart.assets], [a.expected_return for a in chart.assets],
                    s=28, color="#6b6b6b", label="asset classes", zorder=3)
-        for a in chart.assets:
+        # Beyond a dozen asset classes labels only hide each other; the page's tables name them.
+        for a in chart.assets if len(chart.assets) <= MAX_LABELLED_ASSETS else ():
             ax.annotate(a.label, (a.volatility, a.expected_return), textcoords="offset points", xytext=(5, 4),
                         fontsize=8, color="#404040")
         ax.scatter([0.0], [chart.risk_free_rate], s=30, marker="s", color="#b35900", clip_on=False,
@@ -69,13 +71,21 @@ def frontier_svg(chart: FrontierChart) -> str:
             ax.scatter([chart.member.volatility], [chart.member.expected_return], s=90, marker="X",
                        color="#6a1b9a", label=chart.member.label, zorder=6)
         ax.set_xlim(0.0, reach)
+        # The vertical range follows the frontier and the assets; a steep allocation line leaves
+        # through the top rather than flattening everything else.
+        shown = [*rets, *(a.expected_return for a in chart.assets), chart.risk_free_rate, chart.tangency.expected_return]
+        if chart.member is not None:
+            shown.append(chart.member.expected_return)
+        low, high = min(shown), max(shown)
+        pad = 0.08 * (high - low or abs(high) or 0.01)
+        ax.set_ylim(low - pad, high + pad)
         ax.xaxis.set_major_formatter(PercentFormatter(xmax=1.0, decimals=0))
         ax.yaxis.set_major_formatter(PercentFormatter(xmax=1.0, decimals=1))
         ax.set_xlabel("volatility (annual)")
         ax.set_ylabel("expected return (annual)")
         ax.set_title(chart.title)
         ax.grid(True, color="#e0e0e0", linewidth=0.6)
-        ax.legend(loc="lower right", fontsize=8, frameon=True)
+        ax.legend(loc="best", fontsize=8, frameon=True, framealpha=0.9)
         out = io.StringIO()
         # No date or tool metadata: the same chart gives the same bytes.
         fig.savefig(out, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
