@@ -227,6 +227,7 @@ class ActivationOut(BaseModel):
 
 
 class FrontierPointOut(BaseModel):
+    kind: Literal["min_variance", "corner", "tangency", "spaced"]
     expected_return: float
     volatility: float
     sharpe_ratio: float
@@ -238,13 +239,22 @@ class AllocationLineOut(BaseModel):
     slope: float
 
 
+class MemberSplitOut(BaseModel):
+    allocation_id: str
+    risky_fraction: float
+    expected_return: float
+    volatility: float
+
+
 class FrontierOut(BaseModel):
     version: str
     content_hash: str
+    spacing: Literal["return", "volatility"]
     points: list[FrontierPointOut]
     tangency: PortfolioOut
     min_variance: PortfolioOut
     allocation_line: AllocationLineOut
+    member_split: MemberSplitOut | None = None
 
 
 class EstimateIn(Strict):
