@@ -24,6 +24,7 @@ from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_fi
 from .line import AllocationLine
 from .members import MEMBER_ID_PATTERN, Members, read_members
 from .mixes import (
+    MixTerms,
     MixView,
     canonical_inputs,
     check_decimal_rates,
@@ -37,7 +38,7 @@ from .money import format_units, minor_exponent, money_texts, parse_amount, pars
 from .policy import Policy, build_policy, check_rates
 from .answers import answer_texts
 from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
-from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, read_batch, read_single
+from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, parse_json, read_batch, read_single
 
 __all__ = [
     "RESERVED_VERSION_NAMES",
@@ -68,6 +69,7 @@ __all__ = [
     "FieldIssue",
     "MemberErrors",
     "Members",
+    "MixTerms",
     "MixView",
     "Policy",
     "TooManyMembers",
@@ -90,6 +92,7 @@ __all__ = [
     "money_texts",
     "parse_amount",
     "parse_amounts",
+    "parse_json",
     "published_document",
     "read_batch",
     "read_members",

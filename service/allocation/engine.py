@@ -25,14 +25,14 @@ from .disclosures import DISCLOSURES_VERSION
 from .issues import FieldIssue, MemberErrors, batch_field
 from .line import AllocationLine
 from .members import NOT_HELD, Members, duplicate_members, read_members
-from .mixes import MixView
+from .mixes import MixTerms
 from .money import risky_units, split_rows
 from .policy import Policy
 from .preferences import bound_by_policy, check_preferences, wanted_fractions
 from .records import Context, Decisions, preference_texts, record_texts
 
 
-def line_for(view: MixView, policy: Policy) -> AllocationLine:
+def line_for(view: MixTerms, policy: Policy) -> AllocationLine:
     return AllocationLine(
         risk_free_rate=view.risk_free_rate,
         tangency_return=view.tangency_return,
@@ -58,13 +58,19 @@ class Allocations:
     def answers(self, rows: slice = slice(None), *, inline_disclosures: bool) -> list[str]:
         return answer_texts(self.context, self.decisions.rows(rows), inline_disclosures=inline_disclosures)
 
-    def batch_head(self) -> bytes:
-        return batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))
+    def batch_body(self, chunk: int) -> bytes:
+        """A batch's answer: what all results share, then every member's result in order."""
+        parts = [batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))]
+        for start in range(0, self.size, chunk):
+            texts = self.answers(slice(start, start + chunk), inline_disclosures=False)
+            parts.append((("," if start else "") + ",".join(texts)).encode())
+        parts.append(b"]}")
+        return b"".join(parts)
 
 
 def decide(
     members: Members,
-    view: MixView,
+    view: MixTerms,
     policy: Policy,
     new_ids: Callable[[int], list[str]],
     locate: Callable[[int, str], str],
@@ -112,7 +118,7 @@ def allocate(
     plan_id: str,
     currency: str,
     policy: Policy,
-    view: MixView,
+    view: MixTerms,
     created_at: str,
     new_ids: Callable[[int], list[str]],
     locate: Callable[[int, str], str],
@@ -134,7 +140,7 @@ def allocate_each(
     plan_id: str,
     currency: str,
     policy: Policy,
-    view: MixView,
+    view: MixTerms,
     created_at: str,
     new_ids: Callable[[int], list[str]],
 ) -> tuple[Allocations, list[int], dict[int, list[FieldIssue]]]:

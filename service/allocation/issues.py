@@ -29,11 +29,13 @@ class FieldIssue:
 class MemberErrors(AllocationError):
     """Every bad member of a request: `issues` lists up to MAX_LISTED, `count` says how many in all."""
 
-    def __init__(self, issues: Iterable[FieldIssue], locate: Callable[[int, str], str]) -> None:
+    def __init__(
+        self, issues: Iterable[FieldIssue], locate: Callable[[int, str], str], *, counted: tuple[int, int] | None = None
+    ) -> None:
         ordered = sorted(issues)
         self.issues = ordered
-        self.count = len(ordered)
-        self.members = len({i.index for i in ordered})
+        # `counted` (issues, members) when `issues` is already a listed part of a longer list.
+        self.count, self.members = counted or (len(ordered), len({i.index for i in ordered}))
         self.listed = [(locate(i.index, i.field), i.reason) for i in ordered[:MAX_LISTED]]
         field, reason = self.listed[0]
         super().__init__(field, reason)

@@ -172,8 +172,8 @@ def published_document(version: str, digest: str, solved: SolvedMix) -> dict[str
 
 
 @dataclass(frozen=True)
-class MixView:
-    """What allocations need of one solved mix; built once per version and kept in memory."""
+class MixTerms:
+    """What the allocation rules need of one solved mix (small: it travels to batch processes)."""
 
     version: str
     content_hash: str
@@ -182,6 +182,12 @@ class MixView:
     tangency_return: float
     tangency_volatility: float
     risk_free_rate: float
+
+
+@dataclass(frozen=True)
+class MixView(MixTerms):
+    """A published version as a process keeps it: the allocation terms and the solved mix."""
+
     solved: SolvedMix
 
     @classmethod
@@ -195,6 +201,12 @@ class MixView:
             tangency_volatility=solved.tangency.volatility,
             risk_free_rate=solved.inputs.risk_free_rate,
             solved=solved,
+        )
+
+    def terms(self) -> MixTerms:
+        return MixTerms(
+            self.version, self.content_hash, self.codes, self.weights,
+            self.tangency_return, self.tangency_volatility, self.risk_free_rate,
         )
 
 

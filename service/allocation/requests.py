@@ -12,6 +12,8 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+import orjson
+
 from .errors import AllocationError
 from .issues import FieldIssue, MemberErrors, batch_field, single_field
 
@@ -30,6 +32,15 @@ class AllocationRequest:
     mix_version: str
     members: list[Any]
     locate: Callable[[int, str], str]
+
+
+def parse_json(raw: bytes) -> Any:
+    """A request body as JSON values (orjson refuses NaN and Infinity literals)."""
+    try:
+        return orjson.loads(raw)
+    except orjson.JSONDecodeError as error:
+        issue = FieldIssue(0, "body", f"is not valid JSON: {error.msg} at character {error.pos}")
+        raise MemberErrors([issue], single_field) from None
 
 
 def _version(doc: dict[str, Any]) -> list[FieldIssue]:

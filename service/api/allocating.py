@@ -1,10 +1,10 @@
-"""Answering and logging allocations: the one path both allocation routes take.
+"""Answering and logging allocations: the steps around the pipeline, for single and batch.
 
-A single POST is a batch of one: the body is read into an `AllocationRequest` (one member, or
-the batch's members), the allocation pipeline decides every member at once, and the records go
-to the log writer before any answer leaves. Small requests are one job for the writer (group-
-committed with other requests); a large batch is streamed to it in chunks inside one
-transaction, so that writing record text, hashing and the database's own work overlap.
+Both go through the same pipeline (service.allocation.engine): a single request is a batch of
+one, decided together with the other singles of the same event-loop turn (deciding.py); a batch
+is decided in the batch process (batch_process.py). Either way the records reach the log writer
+before any answer leaves: a single as one job, group-committed with other requests; a batch as
+a LogStream, chunk by chunk, made visible in one step.
 """
 
 from __future__ import annotations
@@ -12,83 +12,19 @@ from __future__ import annotations
 import asyncio
 from collections.abc import Awaitable
 from concurrent.futures import Future
-from typing import Any
-
 import orjson
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
-from service.allocation import (
-    Allocations,
-    FieldIssue,
-    MemberErrors,
-    allocate,
-    answer_texts,
-    decisions_from_record,
-    read_batch,
-    read_single,
-    single_field,
-)
+from service.allocation import answer_texts, decisions_from_record, parse_json, read_single
 from service.store import LogBatch, LogStream
 
 from . import idempotency
 from .auth import Caller
+from .batch_process import BatchConversation
+from .deciding import utc_now_text
 from .responses import raw_json_response
-from .deciding import allocation_ids, utc_now_text
 from .state import AppState
-
-# Rows handed to the log writer at a time: big enough that each chunk is a few C calls, small
-# enough that the writer starts inserting almost at once. Requests up to this size are one job.
-CHUNK = 8192
-
-def _json(raw: bytes) -> Any:
-    try:
-        return orjson.loads(raw)
-    except orjson.JSONDecodeError as error:
-        issue = FieldIssue(0, "body", f"is not valid JSON: {error.msg} at character {error.pos}")
-        raise MemberErrors([issue], single_field) from None
-
-
-def prepare_batch(state: AppState, plan_id: str, raw: bytes) -> Allocations:
-    """Read, check and decide every member of a batch; nothing is written (a refused batch logs nothing)."""
-    plan = state.plan(plan_id)
-    request = read_batch(_json(raw), state.settings.batch_limit)
-    return allocate(
-        request.members,
-        plan_id=plan_id,
-        currency=plan.currency,
-        policy=plan.policy,
-        view=state.mixes.view_in_force(plan_id, request.mix_version),
-        created_at=utc_now_text(),
-        new_ids=allocation_ids.block,
-        locate=request.locate,
-    )
-
-
-def answer_body(prepared: Allocations) -> bytes:
-    """A batch's answer: what all results share, then every member's result in order."""
-    parts = [prepared.batch_head()]
-    for start in range(0, prepared.size, CHUNK):
-        texts = prepared.answers(slice(start, start + CHUNK), inline_disclosures=False)
-        parts.append((("," if start else "") + ",".join(texts)).encode())
-    parts.append(b"]}")
-    return b"".join(parts)
-
-
-def _feed(prepared: Allocations, stream: LogStream, owned: idempotency.Claim | None) -> bytes:
-    """Put the records into the stream chunk by chunk, then build the answer (the writer inserts
-    meanwhile: the driver releases the GIL inside the database calls)."""
-    try:
-        d = prepared.decisions
-        for start in range(0, prepared.size, CHUNK):
-            rows = slice(start, start + CHUNK)
-            stream.put(d.allocation_ids[rows], d.member_ids[rows], prepared.records(rows))
-        payload = answer_body(prepared)
-        stream.finish(None if owned is None else owned.completion(201, payload))
-        return payload
-    except BaseException as error:
-        stream.fail(error)
-        raise
 
 
 async def allocate_one(
@@ -96,7 +32,7 @@ async def allocate_one(
 ) -> Response:
     caller.require(plan_id, "portal")
     plan = state.plan(plan_id)
-    request = read_single(_json(raw))
+    request = read_single(parse_json(raw))
     view = state.mixes.view_in_force(plan_id, request.mix_version)
     decided = await state.singles.decide(plan_id, plan.currency, plan.policy, view, request.members[0])
     owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
@@ -117,24 +53,36 @@ async def allocate_batch(
     state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None
 ) -> Response:
     caller.require(plan_id, "portal")
-    prepared = await run_in_threadpool(prepare_batch, state, plan_id, raw)
-    owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
-    if isinstance(owned, Response):
-        return owned
-    ctx, d = prepared.context, prepared.decisions
-    if prepared.size <= CHUNK:
-        payload = answer_body(prepared)
-        job = LogBatch(
-            ctx.plan_id, ctx.mix_version, ctx.created_at, d.allocation_ids, d.member_ids, prepared.records(),
-            None if owned is None else owned.completion(201, payload),
-        )
-        await _log(state, owned, state.db.writer.submit(job))
-    else:
-        stream = LogStream(ctx.plan_id, ctx.mix_version, ctx.created_at, prepared.size)
+    plan = state.plan(plan_id)
+    # Blocking steps of the conversation with the batch process run on worker threads; the
+    # process does the Python work, so this one goes on serving other requests meanwhile.
+    talk = await run_in_threadpool(state.batches.conversation)
+    try:
+        version = await run_in_threadpool(talk.read, raw, state.settings.batch_limit)
+        view = state.mixes.view_in_force(plan_id, version)
+        created_at = utc_now_text()
+        size = await run_in_threadpool(talk.decide, plan_id, plan.currency, plan.policy, view.terms(), created_at)
+        owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
+        if isinstance(owned, Response):
+            return owned
+        stream = LogStream(plan_id, view.version, created_at, size)
         payload = await _log(state, owned, state.db.writer.submit_stream(stream),
-                             run_in_threadpool(_feed, prepared, stream, owned))
-    state.metrics.allocations.labels(plan_id).inc(prepared.size)
+                             run_in_threadpool(_feed, talk, stream, owned))
+    finally:
+        talk.close()
+    state.metrics.allocations.labels(plan_id).inc(size)
     return raw_json_response(payload, 201)
+
+
+def _feed(talk: BatchConversation, stream: LogStream, owned: idempotency.Claim | None) -> bytes:
+    """Records from the batch process into the log writer's stream, then the answer."""
+    try:
+        payload = talk.write(stream.put)
+        stream.finish(None if owned is None else owned.completion(201, payload))
+        return payload
+    except BaseException as error:
+        stream.fail(error)
+        raise
 
 
 async def _log(

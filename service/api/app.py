@@ -109,6 +109,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
         try:
             yield
         finally:
+            state.batches.close()
             state.mixes.close()
             if database is None:
                 db.close()

@@ -61,9 +61,6 @@ class KeyRing:
     def __init__(self) -> None:
         self._known: dict[str, KeyRecord] = {}
 
-    def remember(self, record: KeyRecord) -> None:
-        self._known[record.key_id] = record
-
     def lookup(self, key_id: str, load: KeyLoader) -> KeyRecord | None:
         record = self._known.get(key_id)
         if record is None:

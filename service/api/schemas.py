@@ -291,7 +291,9 @@ class EstimateOut(BaseModel):
 
 
 class PreferenceIn(Strict):
-    """Exactly one kind: risk_aversion | target_volatility | max_loss (+confidence) | risk_score."""
+    """Exactly one kind: risk_aversion | target_volatility | max_loss (+confidence) | risk_score.
+
+    Documentation of the member reader's rules (service.allocation.members), which validates."""
 
     risk_aversion: float | None = None
     target_volatility: float | None = None
@@ -299,29 +301,6 @@ class PreferenceIn(Strict):
     confidence: float | None = None
     horizon_years: float | None = None
     risk_score: int | None = None
-
-    @model_validator(mode="after")
-    def _exactly_one(self) -> PreferenceIn:
-        kinds = [
-            k
-            for k in ("risk_aversion", "target_volatility", "max_loss", "risk_score")
-            if getattr(self, k) is not None
-        ]
-        if not kinds:
-            raise ValueError(
-                "give exactly one of risk_aversion, target_volatility, max_loss (with confidence) "
-                "or risk_score"
-            )
-        if len(kinds) > 1:
-            raise ValueError(f"{' and '.join(kinds)} given together; give exactly one preference")
-        if kinds[0] == "max_loss":
-            if self.confidence is None:
-                raise at("confidence", "required with max_loss: a probability in (0.5, 1)")
-        else:
-            for extra in ("confidence", "horizon_years"):
-                if getattr(self, extra) is not None:
-                    raise at(extra, "belongs to a max_loss preference only")
-        return self
 
 
 class HoldingsIn(Strict):

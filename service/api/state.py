@@ -55,6 +55,7 @@ from service.store import (
 )
 
 from .auth import KeyRing
+from .batch_process import BatchProcess
 from .deciding import SinglesTogether
 from .errors import ConflictError, NotFound, PayloadTooLarge
 from .metrics import Metrics
@@ -331,6 +332,7 @@ class AppState:
         self.keys = KeyRing()
         self.mixes = MixCatalog(database, settings, metrics)
         self.singles = SinglesTogether()
+        self.batches = BatchProcess()
         self._plans: dict[str, PlanView] = {}
 
     def load_key(self, key_id: str) -> KeyRecord | None:

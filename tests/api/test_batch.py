@@ -150,7 +150,7 @@ async def test_batch_limit_is_413(world: World, new_plan_id: str) -> None:
 
 
 async def test_a_batch_larger_than_one_chunk_is_staged_then_visible(world: World, new_plan_id: str) -> None:
-    from service.api.allocating import CHUNK
+    from service.allocation.batch_worker import STREAM_CHUNK as CHUNK
 
     keys = await setup(world, new_plan_id)
     n = CHUNK + 808  # two chunks for the log writer

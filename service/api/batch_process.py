@@ -1,0 +1,141 @@
+"""The serving side of the batch process (service.allocation.batch_worker): start it, talk to it.
+
+A record-keeper's batch is decided in a process of its own, so that portals do not pay for it.
+
+Reading 300,000 members, their rules, record texts and answers are a few seconds of Python; in
+the serving process they would hold the interpreter lock, and every portal request arriving
+meanwhile would wait for it. Here that work runs in a child process (the same pipeline,
+`allocate`), which hands the records back in chunks; the serving process only writes them to
+the log (the writer commits each chunk on its own and serves other requests between chunks,
+see store.LogStream) and sends the answer.
+
+A batch is a conversation of three steps over one pipe, so that nothing is logged before every
+member is checked and the Idempotency-Key is claimed:
+
+    parent                                   child
+    ("read", limit) + body bytes        ->   parse, read the batch's shape
+                                        <-   ("version", v) | ("refused", ...)
+    ("decide", plan, terms, created_at) ->   every member read, checked, decided
+                                        <-   ("decided", n) | ("refused", ...)
+    ("write",)                          ->   records in chunks
+                                        <-   ("rows", ids, members, records) ... ("answer",) + bytes
+    ("cancel",) at any point ends the conversation; the child waits for the next batch.
+"""
+
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import threading
+from collections.abc import Callable
+from multiprocessing.connection import Connection
+from typing import Any
+
+from service.allocation import MixTerms, Policy
+from service.allocation.batch_worker import serve_batches
+
+log = logging.getLogger("mixline.batch")
+
+class BatchConversation:
+    """One batch in the child process; steps are blocking calls (run them off the event loop)."""
+
+    def __init__(self, process: BatchProcess, conn: Connection) -> None:
+        self._process = process
+        self._conn = conn
+        self._open = True
+
+    def _answer(self) -> tuple[Any, ...]:
+        try:
+            message: tuple[Any, ...] = self._conn.recv()
+        except (EOFError, OSError) as error:
+            self._open = False
+            self._process.lost()
+            raise RuntimeError("the batch process ended unexpectedly") from error
+        if message[0] == "refused":
+            self._open = False
+            raise message[1].error()
+        return message
+
+    def read(self, raw: bytes, limit: int) -> str:
+        """Send the body; the batch's mix version once its shape was read."""
+        self._conn.send(("read", limit))
+        self._conn.send_bytes(raw)
+        return str(self._answer()[1])
+
+    def decide(self, plan_id: str, currency: str, policy: Policy, terms: MixTerms, created_at: str) -> int:
+        """Every member decided in the child; how many (MemberErrors if any member is bad)."""
+        self._conn.send(("decide", plan_id, currency, policy, terms, created_at))
+        return int(self._answer()[1])
+
+    def write(self, put: Callable[[list[str], list[str], list[str]], None]) -> bytes:
+        """Hand every chunk of records to `put`, then return the answer body."""
+        self._conn.send(("write",))
+        while True:
+            message = self._answer()
+            if message[0] == "rows":
+                put(message[1], message[2], message[3])
+            elif message[0] == "answer":
+                body = self._conn.recv_bytes()
+                self._open = False
+                return body
+
+    def close(self) -> None:
+        """End the conversation (cancelling it in the child if it is still open)."""
+        if self._open:
+            self._open = False
+            try:
+                self._conn.send(("cancel",))
+            except OSError:
+                self._process.lost()
+        self._process.release()
+
+
+class BatchProcess:
+    """The child process, started on first use and restarted if it dies; one batch at a time."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._process: Any = None
+        self._conn: Connection | None = None
+
+    def start(self) -> None:
+        with self._lock:
+            self._ensure()
+
+    def _ensure(self) -> Connection:
+        if self._process is None or not self._process.is_alive() or self._conn is None:
+            context = multiprocessing.get_context("spawn")
+            parent, child = context.Pipe(duplex=True)
+            process = context.Process(target=serve_batches, args=(child,), name="mixline-batch", daemon=True)
+            process.start()
+            child.close()
+            self._process, self._conn = process, parent
+        return self._conn
+
+    def conversation(self) -> BatchConversation:
+        """Blocks until the child is free; the caller must close() the conversation."""
+        self._lock.acquire()
+        try:
+            return BatchConversation(self, self._ensure())
+        except BaseException:
+            self._lock.release()
+            raise
+
+    def release(self) -> None:
+        self._lock.release()
+
+    def lost(self) -> None:
+        log.error("the batch process ended; it is started again for the next batch")
+        self._process, self._conn = None, None
+
+    def close(self) -> None:
+        process, conn = self._process, self._conn
+        self._process, self._conn = None, None
+        if conn is not None:
+            conn.close()
+        if process is not None:
+            process.join(timeout=5)
+            if process.is_alive():
+                process.terminate()
+
+
