@@ -4,8 +4,26 @@ from __future__ import annotations
 
 import argparse
 import sys
+from types import FrameType
+from typing import TYPE_CHECKING, Any
 
 from service.settings import Settings
+
+if TYPE_CHECKING:
+    from service.store import Database
+
+
+def _database(settings: Settings) -> Database:
+    from service.store import Database
+
+    return Database(
+        settings.database_url, pool_size=settings.db_pool_size, max_overflow=settings.db_max_overflow
+    )
+
+
+# How long uvicorn lets requests in progress finish after SIGTERM; deploy/kubernetes gives the
+# pod terminationGracePeriodSeconds = preStop sleep + this + time to flush the log writer.
+GRACEFUL_SHUTDOWN_SECONDS = 25
 
 
 def _serve(settings: Settings, host: str, port: int, migrate: bool) -> None:
@@ -14,7 +32,24 @@ def _serve(settings: Settings, host: str, port: int, migrate: bool) -> None:
     from service.api import create_app
 
     app = create_app(settings, migrate=migrate)
-    uvicorn.run(app, host=host, port=port, log_level="info", access_log=False)
+    config = uvicorn.Config(
+        app, host=host, port=port, log_level="info", access_log=False,
+        timeout_graceful_shutdown=GRACEFUL_SHUTDOWN_SECONDS,
+    )
+    draining_server(config).run()
+
+
+def draining_server(config: Any) -> Any:
+    """A uvicorn Server that marks the app not ready the moment a stop signal arrives, before
+    uvicorn starts waiting for the requests in progress (the lifespan's shutdown comes later)."""
+    import uvicorn
+
+    class DrainingServer(uvicorn.Server):
+        def handle_exit(self, sig: int, frame: FrameType | None) -> None:
+            config.app.state.mixline.shutting_down = True
+            super().handle_exit(sig, frame)
+
+    return DrainingServer(config)
 
 
 def _demo(settings: Settings, host: str, port: int) -> None:
@@ -26,9 +61,14 @@ def _demo(settings: Settings, host: str, port: int) -> None:
     from service.api.schemas import MixIn
     from service.api.state import AppState
     from service.demo import DEMO_ALLOCATION, DEMO_MIX, DEMO_PLAN
-    from service.store import Database, get_plan, insert_key, insert_plan, secret_hash
+    from service.store import (
+        get_plan,
+        insert_key,
+        insert_plan,
+        secret_hash,
+    )
 
-    db = Database(settings.database_url)
+    db = _database(settings)
     db.upgrade()
     with db.writing() as s:
         if get_plan(s, DEMO_PLAN["plan_id"]) is None:
@@ -70,9 +110,9 @@ def _demo(settings: Settings, host: str, port: int) -> None:
 def _audit_verify(settings: Settings, plan_id: str | None) -> int:
     from sqlalchemy import text
 
-    from service.store import Database, verify_chain
+    from service.store import verify_chain
 
-    db = Database(settings.database_url)
+    db = _database(settings)
     if plan_id:
         plans = [plan_id]
     else:
@@ -113,9 +153,11 @@ def main(argv: list[str] | None = None) -> int:
     elif args.command == "demo":
         _demo(settings, args.host, args.port)
     elif args.command == "migrate":
-        from service.store import Database
-
-        Database(settings.database_url).upgrade()
+        db = _database(settings)
+        try:
+            db.upgrade()  # idempotent: a re-run at head changes nothing
+        finally:
+            db.close()
         print("migrations applied")
     elif args.command == "audit":
         return _audit_verify(settings, args.plan)

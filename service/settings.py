@@ -30,6 +30,11 @@ class Settings(BaseSettings):
     max_assets: int = Field(default=2000, ge=1)
     # Largest number of frontier points one request may ask for.
     max_frontier_points: int = Field(default=500, ge=2)
+    # Database connections one process may hold: db_pool_size kept open, up to db_max_overflow
+    # more under load (the log writer's own connection included). Replicas x (size + overflow)
+    # must stay below the server's max_connections; deploy/kubernetes/deployment.yaml shows the sum.
+    db_pool_size: int = Field(default=10, ge=1)
+    db_max_overflow: int = Field(default=20, ge=0)
     # How long a replica may answer allocations from the active version it last read, in
     # seconds: an activation on any replica is in force everywhere within this (bounded so that
     # replicas always agree within 5 s).

@@ -15,7 +15,7 @@ SERVICE = Path(__file__).resolve().parents[1] / "service"
 FORBIDDEN = {
     "numerics": {"fastapi", "starlette", "sqlalchemy", "pydantic", "alembic", "psycopg", "service.api", "service.store", "service.allocation"},
     "allocation": {"fastapi", "starlette", "sqlalchemy", "alembic", "psycopg", "service.api", "service.store"},
-    "store": {"fastapi", "starlette", "service.api", "service.allocation", "service.numerics"},
+    "store": {"fastapi", "starlette", "prometheus_client", "service.api", "service.allocation", "service.numerics"},
 }
 
 

@@ -6,7 +6,7 @@ import gc
 import json
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
-from pathlib import Path
+from importlib.resources import files
 from typing import Any
 
 from fastapi import FastAPI
@@ -16,15 +16,18 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
+from service.version import VERSION
 
 from . import allocations, audit, errors, estimating, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
+from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
 from .metrics import Metrics, MetricsMiddleware
 from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
 from .state import AppState
 
-EXAMPLES_DIR = Path(__file__).resolve().parents[2] / "openapi_examples"
+# Package data (pyproject's package-data), so an installed package, the image included, has them.
+EXAMPLES = files("service.api") / "openapi_examples"
 
 
 class BodyLimit:
@@ -92,8 +95,11 @@ def bootstrap(state: AppState) -> None:
 
 def create_app(settings: Settings | None = None, database: Database | None = None, *, migrate: bool = True) -> FastAPI:
     settings = settings or Settings()
-    db = database or Database(settings.database_url)
+    db = database or Database(
+        settings.database_url, pool_size=settings.db_pool_size, max_overflow=settings.db_max_overflow
+    )
     metrics = Metrics()
+    metrics.watch_writer(db.writer)
     state = AppState(settings, db, metrics)
 
     @asynccontextmanager
@@ -109,6 +115,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
         try:
             yield
         finally:
+            state.shutting_down = True
             state.batches.close()
             state.mixes.close()
             if database is None:
@@ -116,13 +123,15 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
 
     app = FastAPI(
         title="mixline",
-        version="1.0.0",
+        version=VERSION,
         summary="Per-member risky/safe splits by mean-variance reasoning, every answer logged tamper-evidently.",
         description=(
             "Every recommendation follows from the plan's stated assumptions, which are estimates; it "
             "is not individual advice; local rules and licensed advice prevail."
         ),
         lifespan=lifespan,
+        docs_url=None,  # served by docs.install_docs, from the service's own assets
+        redoc_url=None,
     )
     app.state.mixline = state
     app.state.metrics = metrics
@@ -132,14 +141,13 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     install_openapi(app)
+    install_docs(app)
     return app
 
 
 def _load_examples() -> dict[str, dict[str, Any]]:
     found: dict[str, dict[str, Any]] = {}
-    if not EXAMPLES_DIR.is_dir():
-        return found
-    for path in sorted(EXAMPLES_DIR.glob("*.json")):
+    for path in sorted((p for p in EXAMPLES.iterdir() if p.name.endswith(".json")), key=lambda p: p.name):
         example = json.loads(path.read_text())
         found.setdefault(example["operation_id"], example)
     return found

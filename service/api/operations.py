@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 from fastapi import APIRouter, Request
-from starlette.responses import Response
+from starlette.responses import PlainTextResponse, Response
 
 from .deps import StateDep
 from .errors import NotReady
+from .metrics import EXPOSITION_MEDIA_TYPE
 from .responses import json_response, problems
 from .schemas import HealthOut
 
@@ -20,6 +21,8 @@ async def livez() -> Response:
 
 @router.get("/readyz", response_model=HealthOut, operation_id="readyz", responses=problems(503))
 def readyz(state: StateDep) -> Response:
+    if state.shutting_down:
+        raise NotReady("shutting down: finishing the requests in progress")
     if not state.db.ping():
         raise NotReady("database unreachable")
     if not state.db.migrations_current():
@@ -28,9 +31,13 @@ def readyz(state: StateDep) -> Response:
 
 
 @router.get(
-    "/metrics", operation_id="metrics",
-    responses={200: {"description": "Prometheus text", "content": {"text/plain": {}}}},
+    "/metrics", operation_id="metrics", response_class=PlainTextResponse,
+    summary="Prometheus metrics",
+    responses={200: {
+        "description": f"Prometheus text exposition format (`{EXPOSITION_MEDIA_TYPE}`), not JSON",
+        "content": {"text/plain": {"schema": {"type": "string"}}},
+    }},
 )
 def metrics(request: Request) -> Response:
     body = request.app.state.metrics.render()
-    return Response(body, media_type="text/plain; version=0.0.4; charset=utf-8")
+    return Response(body, media_type=EXPOSITION_MEDIA_TYPE)

@@ -1,4 +1,4 @@
-"""Request and response models of the HTTP contract (../shared/API.md field names).
+"""Request and response models of the HTTP contract (field names as docs/API.md fixes them).
 
 Requests are strict: no NaN or Infinity, no booleans or strings where numbers belong, no unknown
 fields. Money is a decimal string; a plain number is accepted too and parsed exactly.

@@ -300,7 +300,7 @@ class MixCatalog:
             assert raced is not None
             return self._same_or_conflict(request.version, digest, raced)
         self._remember(plan.plan_id, request.version, digest, solved, doc, canonical)
-        self._metrics.mixes.inc()
+        self._metrics.mixes.labels(plan.plan_id).inc()
         return True, doc
 
     def solve_frontier_later(self, plan_id: str, version: str) -> None:
@@ -334,6 +334,9 @@ class AppState:
         self.singles = SinglesTogether()
         self.batches = BatchProcess()
         self._plans: dict[str, PlanView] = {}
+        # Set once the process begins to stop (SIGTERM, or the lifespan's shutdown): /readyz then
+        # answers 503, so a balancer still holding a connection to it sends no new work.
+        self.shutting_down = False
 
     def load_key(self, key_id: str) -> KeyRecord | None:
         with self.db.reading() as s:

@@ -20,10 +20,11 @@ replicas sharing one database still build one consistent chain per plan.
 from __future__ import annotations
 
 import hashlib
+import logging
 import queue
 import threading
 import time
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import Future
 from dataclasses import dataclass, field
 from typing import Any
@@ -52,6 +53,8 @@ from service.store.records import (
     LogStream,
 )
 from service.store.wal_checkpoints import WalCheckpointer
+
+log = logging.getLogger("mixline.writer")
 
 _COLUMNS = (
     "plan_id, seq, allocation_id, member_id, mix_version, created_at, body, prev_hash, row_hash, batch_id"
@@ -186,6 +189,13 @@ class ChainWriter:
         self._connection: Any = None  # a pooled DBAPI connection, owned by the writer thread
         self._checkpointer = WalCheckpointer(engine) if self._dialect == "sqlite" else None
         self._last_purge = 0.0
+        # Called on the writer thread after each group as (jobs, rows, seconds); the api layer
+        # turns it into metrics, so this module needs no metrics library. Once per group, not per row.
+        self.group_written: Callable[[int, int, float], None] | None = None
+
+    def queue_depth(self) -> int:
+        """Jobs submitted and not yet taken by the writer thread (approximate, lock-free)."""
+        return self._queue.qsize()
 
     @property
     def running(self) -> bool:
@@ -302,10 +312,22 @@ class ChainWriter:
             in_flight[:] = group if carried is None else [*group, carried]
             recent_jobs = len(group)
             started = time.monotonic()
-            self._write_group([j for j in group if j.future.set_running_or_notify_cancel()])
+            written = [j for j in group if j.future.set_running_or_notify_cancel()]
+            self._write_group(written)
             recent_write_seconds = time.monotonic() - started
+            if self.group_written is not None and written:
+                self._report(len(written), sum(j.size for j in written), recent_write_seconds)
             if stopping:
                 return
+
+    def _report(self, jobs: int, rows: int, seconds: float) -> None:
+        callback = self.group_written
+        try:
+            if callback is not None:
+                callback(jobs, rows, seconds)
+        except Exception:
+            # A broken observer must never stop the log; say so and carry on.
+            log.exception("the log writer's group_written callback failed")
 
     def _gather(
         self, first: _Job, recent_jobs: int, recent_write_seconds: float
@@ -368,7 +390,10 @@ class ChainWriter:
                 if isinstance(chunk, Finished):
                     break
                 if chunk is not None:
+                    started = time.monotonic()
                     self._write_retrying([_Job(chunk, len(chunk.allocation_ids), Future())])
+                    if self.group_written is not None:
+                        self._report(1, len(chunk.allocation_ids), time.monotonic() - started)
                 stopping = self._serve_waiting(deferred, in_flight) or stopping
             self._batch_state(stream, VISIBLE, chunk.completes)
         except BaseException as error:
@@ -401,8 +426,12 @@ class ChainWriter:
                 group.append(waiting)
         if group:
             in_flight.extend(group)
-            self._write_group([j for j in group if j.future.set_running_or_notify_cancel()])
+            started = time.monotonic()
+            written = [j for j in group if j.future.set_running_or_notify_cancel()]
+            self._write_group(written)
             del in_flight[1:]
+            if self.group_written is not None and written:
+                self._report(len(written), sum(j.size for j in written), time.monotonic() - started)
         return stopping
 
     def _batch_state(

@@ -1,4 +1,4 @@
-"""Runs the documented examples in openapi_examples/ against an app, in their numbered order.
+"""Runs the documented examples in service/api/openapi_examples/ against an app, in their numbered order.
 
 Each file holds one operation's example in our invented scenario:
   {"operation_id", "summary", "role", "method", "path", "query", "request", "status", "response"}
@@ -21,7 +21,7 @@ from typing import Any
 
 import httpx
 
-EXAMPLES = Path(__file__).resolve().parents[2] / "openapi_examples"
+EXAMPLES = Path(__file__).resolve().parents[2] / "service" / "api" / "openapi_examples"
 
 
 def load_examples() -> list[tuple[Path, dict[str, Any]]]:
