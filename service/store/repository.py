@@ -18,7 +18,13 @@ from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from service.store.errors import Conflict
-from service.store.records import VISIBLE, KeyRecord, MixLifecycle, MixRecord, PlanRecord
+from service.store.records import (
+    VISIBLE,
+    KeyRecord,
+    MixLifecycle,
+    MixRecord,
+    PlanRecord,
+)
 from service.store.schema import (
     Allocation,
     AllocationBatch,
