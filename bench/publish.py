@@ -89,7 +89,7 @@ def main() -> None:
         start = time.perf_counter()
         solve_mix(inputs, cross_check=False, frontier=False)
         solves.append(time.perf_counter() - start)
-    ms = lambda xs: 1000 * statistics.median(xs)  # noqa: E731
+    ms = lambda xs: 1000 * statistics.median(xs)
     print("publish times ms:", [round(1000 * x, 1) for x in publish])
     print(f"publish {args.assets} assets, no cross-checks: median {ms(publish):.1f} ms (min {1000 * min(publish):.1f}); "
           f"target < 50 ms")

@@ -21,7 +21,7 @@ def test_audit_verify_names_the_first_bad_row(tmp_path: Path, monkeypatch: pytes
         with db.writing() as s:
             insert_plan(s, plan_id="cli-plan", name="CLI plan", currency="USD", policy={})
         ids = [f"al_{i}" for i in range(5)]
-        db.writer.append(LogBatch("cli-plan", "v1", "2026-12-01T00:00:00.000000Z", ids, ["m"] * 5, ['{"n":%d}' % i for i in range(5)]))
+        db.writer.append(LogBatch("cli-plan", "v1", "2026-12-01T00:00:00.000000Z", ids, ["m"] * 5, [f'{{"n":{i}}}' for i in range(5)]))
     finally:
         db.close()
     capsys.readouterr()

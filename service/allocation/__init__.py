@@ -4,8 +4,9 @@ One pipeline (engine.py) answers a single member and a 300,000-member batch alik
 numerics below it; knows nothing of HTTP or databases.
 """
 
+from .answers import answer_texts
 from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
-from .engine import Allocations, allocate, allocate_each, decide, line_for
+from .engine import Allocations, Setting, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .estimation import estimate_mix, parse_dates
 from .lifecycle import (
@@ -36,7 +37,6 @@ from .mixes import (
 )
 from .money import format_units, minor_exponent, money_texts, parse_amount, parse_amounts
 from .policy import Policy, build_policy, check_rates
-from .answers import answer_texts
 from .records import RECORD_FORM, Context, Decisions, decisions_from_record, record_texts
 from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, parse_json, read_batch, read_single
 
@@ -72,6 +72,7 @@ __all__ = [
     "MixTerms",
     "MixView",
     "Policy",
+    "Setting",
     "TooManyMembers",
     "allocate",
     "allocate_each",

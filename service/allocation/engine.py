@@ -112,51 +112,52 @@ def decide(
     )
 
 
+@dataclass(frozen=True)
+class Setting:
+    """What every member of one call is decided against: the plan's terms, the mix, the time."""
+
+    plan_id: str
+    currency: str
+    policy: Policy
+    view: MixTerms
+    created_at: str
+
+    def context(self) -> Context:
+        v = self.view
+        return Context(self.plan_id, v.version, v.content_hash, self.created_at, self.currency, DISCLOSURES_VERSION, v.codes)
+
+
+def _read_checked(items: Sequence[Any], on: Setting) -> tuple[Members, list[FieldIssue]]:
+    members, issues = read_members(items, on.currency)
+    return members, issues + check_preferences(members.preferences, on.policy)
+
+
 def allocate(
-    items: Sequence[Any],
-    *,
-    plan_id: str,
-    currency: str,
-    policy: Policy,
-    view: MixTerms,
-    created_at: str,
-    new_ids: Callable[[int], list[str]],
-    locate: Callable[[int, str], str],
+    items: Sequence[Any], on: Setting, *, new_ids: Callable[[int], list[str]], locate: Callable[[int, str], str]
 ) -> Allocations:
     """Read, check and decide every member of one request; raises MemberErrors naming each bad
     one (via `locate`). A member_id may appear once per request."""
-    members, issues = read_members(items, currency)
+    members, issues = _read_checked(items, on)
     issues += duplicate_members(members.member_ids)
-    issues += check_preferences(members.preferences, policy)
     if issues:
         raise MemberErrors(issues, locate)
-    context = Context(plan_id, view.version, view.content_hash, created_at, currency, DISCLOSURES_VERSION, view.codes)
-    return Allocations(context, decide(members, view, policy, new_ids, locate))
+    return Allocations(on.context(), decide(members, on.view, on.policy, new_ids, locate))
 
 
 def allocate_each(
-    items: Sequence[Any],
-    *,
-    plan_id: str,
-    currency: str,
-    policy: Policy,
-    view: MixTerms,
-    created_at: str,
-    new_ids: Callable[[int], list[str]],
+    items: Sequence[Any], on: Setting, *, new_ids: Callable[[int], list[str]]
 ) -> tuple[Allocations, list[int], dict[int, list[FieldIssue]]]:
     """Members of separate requests through the same steps: (the good ones decided, their
     positions in `items`, each bad one's issues by position)."""
-    members, issues = read_members(items, currency)
-    issues += check_preferences(members.preferences, policy)
+    members, issues = _read_checked(items, on)
     refused: dict[int, list[FieldIssue]] = {}
     for issue in issues:
         refused.setdefault(issue.index, []).append(issue)
-    context = Context(plan_id, view.version, view.content_hash, created_at, currency, DISCLOSURES_VERSION, view.codes)
     while True:
         good = [i for i in range(members.size) if i not in refused]
         chosen = members if len(good) == members.size else members.rows(good)
         try:
-            return Allocations(context, decide(chosen, view, policy, new_ids, batch_field)), good, refused
+            return Allocations(on.context(), decide(chosen, on.view, on.policy, new_ids, batch_field)), good, refused
         except MemberErrors as impossible:
             # Rare (a loss bound even the safe holding fails): set those apart and decide the rest.
             for issue in impossible.issues:

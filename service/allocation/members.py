@@ -52,7 +52,7 @@ class Members:
 
     @property
     def routed(self) -> NDArray[np.bool_]:
-        return self.held_risky != NOT_HELD
+        return np.not_equal(self.held_risky, NOT_HELD)
 
     def rows(self, picked: list[int]) -> Members:
         """The members at these positions, in this order."""

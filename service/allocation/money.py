@@ -17,7 +17,6 @@ import numpy as np
 import orjson
 from numpy.typing import NDArray
 
-
 Units = NDArray[np.int64]
 
 # ISO 4217 minor-unit exponents that differ from 2 (from the standard's list, common currencies).

@@ -78,7 +78,7 @@ class Decisions:
 
     @property
     def routed(self) -> NDArray[np.bool_]:
-        return self.held_risky != NOT_HELD
+        return np.not_equal(self.held_risky, NOT_HELD)
 
     def rows(self, selection: slice) -> Decisions:
         if selection == slice(None):

@@ -12,11 +12,12 @@ from __future__ import annotations
 import asyncio
 from collections.abc import Awaitable
 from concurrent.futures import Future
+
 import orjson
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
-from service.allocation import answer_texts, decisions_from_record, parse_json, read_single
+from service.allocation import Setting, answer_texts, decisions_from_record, parse_json, read_single
 from service.store import LogBatch, LogStream
 
 from . import idempotency
@@ -61,7 +62,8 @@ async def allocate_batch(
         version = await run_in_threadpool(talk.read, raw, state.settings.batch_limit)
         view = state.mixes.view_in_force(plan_id, version)
         created_at = utc_now_text()
-        size = await run_in_threadpool(talk.decide, plan_id, plan.currency, plan.policy, view.terms(), created_at)
+        on = Setting(plan_id, plan.currency, plan.policy, view.terms(), created_at)
+        size = await run_in_threadpool(talk.decide, on)
         owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
         if isinstance(owned, Response):
             return owned

@@ -12,6 +12,7 @@ from service.store import get_allocation, list_allocations
 
 from . import idempotency
 from .allocating import allocate_batch, allocate_one, rendered
+from .auth import Caller
 from .deps import CallerDep, StateDep
 from .errors import NotFound
 from .responses import AUTHED, problems, raw_json_response
@@ -40,15 +41,19 @@ def _documented(body: str) -> dict[str, object]:
 # so they read the same things directly, through the same KeyRing, and declare them above.
 
 
+def _read(request: Request) -> tuple[AppState, Caller, str | None]:
+    state: AppState = request.app.state.mixline
+    caller = state.keys.caller(request.headers.get("authorization"), state.load_key)
+    return state, caller, request.headers.get("idempotency-key")
+
+
 @router.post(
     "", status_code=201, response_model=AllocationOut, operation_id="create_allocation",
     responses=problems(400, *AUTHED, 409, 413), openapi_extra=_documented("AllocationIn"),
 )
 async def create_allocation(plan_id: str, request: Request) -> Response:
-    state: AppState = request.app.state.mixline
-    caller = state.keys.caller(request.headers.get("authorization"), state.load_key)
-    raw = await request.body()
-    return await allocate_one(state, caller, plan_id, raw, request.headers.get("idempotency-key"))
+    state, caller, key = _read(request)
+    return await allocate_one(state, caller, plan_id, await request.body(), key)
 
 
 @router.post(
@@ -56,10 +61,8 @@ async def create_allocation(plan_id: str, request: Request) -> Response:
     responses=problems(400, *AUTHED, 409, 413), openapi_extra=_documented("BatchIn"),
 )
 async def create_allocation_batch(plan_id: str, request: Request) -> Response:
-    state: AppState = request.app.state.mixline
-    caller = state.keys.caller(request.headers.get("authorization"), state.load_key)
-    raw = await request.body()
-    return await allocate_batch(state, caller, plan_id, raw, request.headers.get("idempotency-key"))
+    state, caller, key = _read(request)
+    return await allocate_batch(state, caller, plan_id, await request.body(), key)
 
 
 @router.get(

@@ -15,7 +15,7 @@ member is checked and the Idempotency-Key is claimed:
     parent                                   child
     ("read", limit) + body bytes        ->   parse, read the batch's shape
                                         <-   ("version", v) | ("refused", ...)
-    ("decide", plan, terms, created_at) ->   every member read, checked, decided
+    ("decide", setting)                 ->   every member read, checked, decided
                                         <-   ("decided", n) | ("refused", ...)
     ("write",)                          ->   records in chunks
                                         <-   ("rows", ids, members, records) ... ("answer",) + bytes
@@ -31,7 +31,7 @@ from collections.abc import Callable
 from multiprocessing.connection import Connection
 from typing import Any
 
-from service.allocation import MixTerms, Policy
+from service.allocation import Setting
 from service.allocation.batch_worker import serve_batches
 
 log = logging.getLogger("mixline.batch")
@@ -62,9 +62,9 @@ class BatchConversation:
         self._conn.send_bytes(raw)
         return str(self._answer()[1])
 
-    def decide(self, plan_id: str, currency: str, policy: Policy, terms: MixTerms, created_at: str) -> int:
+    def decide(self, on: Setting) -> int:
         """Every member decided in the child; how many (MemberErrors if any member is bad)."""
-        self._conn.send(("decide", plan_id, currency, policy, terms, created_at))
+        self._conn.send(("decide", on))
         return int(self._answer()[1])
 
     def write(self, put: Callable[[list[str], list[str], list[str]], None]) -> bytes:

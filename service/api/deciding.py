@@ -13,6 +13,7 @@ from service.allocation import (
     MemberErrors,
     MixView,
     Policy,
+    Setting,
     allocate_each,
     single_field,
 )
@@ -22,13 +23,6 @@ allocation_ids = AllocationIds()
 
 def utc_now_text() -> str:
     return datetime.now(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
-
-
-@dataclass(frozen=True)
-class _Plan:
-    plan_id: str
-    currency: str
-    policy: Policy
 
 
 @dataclass(frozen=True)
@@ -42,6 +36,9 @@ class Decided:
     answer: bytes
 
 
+Waiting = list[tuple[Any, "asyncio.Future[Decided]"]]
+
+
 class SinglesTogether:
     """Single requests that arrive together are decided together, as the rows of one call.
 
@@ -53,14 +50,13 @@ class SinglesTogether:
     """
 
     def __init__(self) -> None:
-        self._waiting: dict[tuple[str, str], tuple[_Plan, MixView, list[tuple[Any, asyncio.Future[Decided]]]]] = {}
+        self._waiting: dict[tuple[str, str], tuple[str, Policy, MixView, Waiting]] = {}
         self._scheduled = False
 
     def decide(self, plan_id: str, currency: str, policy: Policy, view: MixView, member: Any) -> asyncio.Future[Decided]:
         loop = asyncio.get_running_loop()
         decided: asyncio.Future[Decided] = loop.create_future()
-        entry = self._waiting.setdefault((plan_id, view.version), (_Plan(plan_id, currency, policy), view, []))
-        entry[2].append((member, decided))
+        self._waiting.setdefault((plan_id, view.version), (currency, policy, view, []))[3].append((member, decided))
         if not self._scheduled:
             self._scheduled = True
             # After the callbacks already due: the other requests read in this turn join in.
@@ -71,15 +67,15 @@ class SinglesTogether:
         self._scheduled = False
         waiting, self._waiting = self._waiting, {}
         created_at = utc_now_text()
-        for plan, view, entries in waiting.values():
+        for (plan_id, _), (currency, policy, view, entries) in waiting.items():
             try:
                 done, rows, refused = allocate_each(
-                    [member for member, _ in entries], plan_id=plan.plan_id, currency=plan.currency,
-                    policy=plan.policy, view=view, created_at=created_at, new_ids=allocation_ids.block,
+                    [member for member, _ in entries], Setting(plan_id, currency, policy, view, created_at),
+                    new_ids=allocation_ids.block,
                 )
                 records = done.records()
                 answers = done.answers(inline_disclosures=True)
-            except Exception as error:  # noqa: BLE001 - every waiting request gets the failure
+            except Exception as error:
                 for _, future in entries:
                     if not future.done():
                         future.set_exception(error)

@@ -10,7 +10,7 @@ from __future__ import annotations
 from fastapi import FastAPI
 from fastapi.openapi.docs import get_swagger_ui_html
 from starlette.responses import FileResponse, HTMLResponse
-from swagger_ui_bundle import swagger_ui_path  # type: ignore[import-untyped]
+from swagger_ui_bundle import swagger_ui_path
 
 from .errors import NotFound
 

@@ -166,16 +166,16 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
             instance=path, extra={"active_version": exc.active_version},
         )
     if isinstance(exc, MemberErrors):
-        errors = [field_error(field, reason) for field, reason in exc.listed]
-        first = f"{errors[0]['field']}: {errors[0]['reason']}"
+        listed = [field_error(field, reason) for field, reason in exc.listed]
+        opening = f"{listed[0]['field']}: {listed[0]['reason']}"
         if exc.count == 1:
-            detail = first
+            detail = opening
         else:
-            shown = f"; {exc.count - len(errors)} more not listed" if exc.count > len(errors) else ""
-            detail = f"{exc.count} problems in {exc.members} member(s){shown}; the first: {first}"
-        body_extra = {"error_count": exc.count}
+            shown = f"; {exc.count - len(listed)} more not listed" if exc.count > len(listed) else ""
+            detail = f"{exc.count} problems in {exc.members} member(s){shown}; the first: {opening}"
         return problem_response(
-            422, "Invalid request", detail, slug="validation", errors=errors, instance=path, extra=body_extra,
+            422, "Invalid request", detail, slug="validation", errors=listed, instance=path,
+            extra={"error_count": exc.count},
         )
     if isinstance(exc, TooManyMembers):
         return problem_response(
@@ -188,12 +188,12 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
             errors=[field_error(exc.field, exc.reason)], instance=path,
         )
     if isinstance(exc, RequestValidationError):
-        errors = validation_errors(exc)
-        first = errors[0] if errors else field_error("body", "invalid")
-        more = f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""
+        found = validation_errors(exc)
+        first = found[0] if found else field_error("body", "invalid")
+        more = f" (and {len(found) - 1} more)" if len(found) > 1 else ""
         return problem_response(
             422, "Invalid request", f"{first['field']}: {first['reason']}{more}", slug="validation",
-            errors=errors, instance=path,
+            errors=found, instance=path,
         )
     if isinstance(exc, StarletteHTTPException):
         titles = {404: "Not found", 405: "Method not allowed", 413: "Payload too large"}

@@ -41,7 +41,8 @@ def _money(value: Any) -> str | int | float:
         raise ValueError('must be a decimal string such as "1250.00" or a number')
     if isinstance(value, float) and not math.isfinite(value):
         raise ValueError("must be a finite amount")
-    return value
+    money: str | int | float = value
+    return money
 
 Code = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$")]
 IDENTIFIER_PATTERN = f"^{VERSION_PATTERN}$"

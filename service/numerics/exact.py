@@ -9,8 +9,14 @@ from __future__ import annotations
 import numpy as np
 import numpy.typing as npt
 
-from service.numerics.active_set import (KKT_TOLERANCE, BoxProblem, BoxSolution, min_variance_kkt_residual,
-                                         solve_box_problem, tangency_kkt_residual)
+from service.numerics.active_set import (
+    KKT_TOLERANCE,
+    BoxProblem,
+    BoxSolution,
+    min_variance_kkt_residual,
+    solve_box_problem,
+    tangency_kkt_residual,
+)
 from service.numerics.closed_form import ClosedForm
 from service.numerics.errors import InputError
 from service.numerics.inputs import MixInputs, budget_tolerance

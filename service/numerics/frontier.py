@@ -33,10 +33,10 @@ from scipy.linalg.lapack import dpotri as _potri
 from service.numerics.active_set import BoxProblem, BoxSolution, solve_box_problem
 from service.numerics.closed_form import ClosedForm
 from service.numerics.errors import InputError
+from service.numerics.exact import only_feasible_weights
 from service.numerics.inputs import MixInputs
 from service.numerics.max_return import FIXED, FREE, LOWER, UPPER
 from service.numerics.portfolio import Portfolio, portfolio_from_weights
-from service.numerics.exact import only_feasible_weights
 from service.numerics.warm_start import min_variance_start
 
 __all__ = ["Frontier", "efficient_frontier", "frontier_from_min_variance", "best_sharpe_on_frontier",
@@ -104,7 +104,7 @@ class Frontier:
         slack = _RETURN_RTOL * max(1.0, float(np.max(np.abs(m))))
         if m.size == 1:
             if abs(target - m[0]) <= slack:
-                return self.corner_weights[0].copy()
+                return np.array(self.corner_weights[0], dtype=np.float64)
             raise ValueError(f"the frontier is the single portfolio with expected return {m[0]:.6g}, "
                              f"not {target:.6g}")
         if target < m[0] - slack:

@@ -13,7 +13,6 @@ import hashlib
 from typing import TYPE_CHECKING, Any, Protocol
 
 from sqlalchemy import select
-from sqlalchemy.engine import Row
 from sqlalchemy.orm import Session
 
 from service.store.records import BadRow, ChainReport
@@ -91,9 +90,8 @@ def _verify(session: Session, plan_id: str) -> ChainReport:
     checked = 0
     with rows:
         for link in rows:
-            seq, allocation_id, member_id, mix_version, created_at, body, stored_prev, row_hash = (
-                link
-            )
+            fields: tuple[Any, ...] = tuple(link)
+            seq, allocation_id, member_id, mix_version, created_at, body, stored_prev, row_hash = fields
             checked += 1
             if not (
                 seq == expected_seq
@@ -105,7 +103,7 @@ def _verify(session: Session, plan_id: str) -> ChainReport:
                 )
                 == row_hash
             ):
-                reason = _fault(link, plan_id, expected_seq, prev_hash, head_seq)
+                reason = _fault(fields, plan_id, expected_seq, prev_hash, head_seq)
                 return ChainReport(
                     plan_id, False, checked, prev_hash, BadRow(seq, allocation_id, reason)
                 )
@@ -133,7 +131,7 @@ def _verify(session: Session, plan_id: str) -> ChainReport:
 
 
 def _fault(
-    link: Row[Any], plan_id: str, expected_seq: int, prev_hash: str, head_seq: int
+    link: tuple[Any, ...], plan_id: str, expected_seq: int, prev_hash: str, head_seq: int
 ) -> str:
     """Why ``link`` failed; the checks in the order that names the likeliest cause."""
     seq, allocation_id, member_id, mix_version, created_at, body, stored_prev, row_hash = link

@@ -13,7 +13,7 @@ from datetime import datetime
 from typing import Any
 
 import orjson
-from sqlalchemy import Insert, exists, or_, select, update
+from sqlalchemy import exists, or_, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -37,7 +37,7 @@ from service.store.schema import (
 )
 
 
-def _insert(session: Session, table: Any) -> Insert:
+def _insert(session: Session, table: Any) -> postgresql.Insert | sqlite.Insert:
     name = session.get_bind().dialect.name
     if name == "postgresql":
         return postgresql.insert(table)

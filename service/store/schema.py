@@ -13,8 +13,8 @@ from typing import Any
 
 import orjson
 from sqlalchemy import (
-    BigInteger,
     CHAR,
+    BigInteger,
     DateTime,
     Dialect,
     ForeignKey,

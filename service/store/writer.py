@@ -372,8 +372,10 @@ class ChainWriter:
             rows += job.size
         return group, None, False
 
-    # Rows of other requests are written between a stream's chunks; a chunk stays small so that
-    # they wait for at most one chunk's transaction.
+    # Rows of other requests are written between a stream's transactions, each of at most this
+    # many rows (a few milliseconds), so that they wait for at most one of them. PostgreSQL pays
+    # an fsync per commit and lets other plans' requests commit meanwhile: larger pieces there.
+    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 256, "postgresql": 1024}
     STREAM_POLL_SECONDS = 0.002
 
     def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
@@ -389,12 +391,21 @@ class ChainWriter:
                 chunk = stream.next_chunk(self.STREAM_POLL_SECONDS)
                 if isinstance(chunk, Finished):
                     break
-                if chunk is not None:
+                if chunk is None:
+                    stopping = self._serve_waiting(deferred, in_flight) or stopping
+                    continue
+                step = self.STREAM_ROWS_PER_TRANSACTION.get(self._dialect, 256)
+                for rows in range(0, len(chunk.allocation_ids), step):
+                    part = slice(rows, rows + step)
+                    piece = LogBatch(
+                        chunk.plan_id, chunk.mix_version, chunk.created_at, chunk.allocation_ids[part],
+                        chunk.member_ids[part], chunk.bodies[part], batch_id=chunk.batch_id,
+                    )
                     started = time.monotonic()
-                    self._write_retrying([_Job(chunk, len(chunk.allocation_ids), Future())])
+                    self._write_retrying([_Job(piece, len(piece.allocation_ids), Future())])
                     if self.group_written is not None:
-                        self._report(1, len(chunk.allocation_ids), time.monotonic() - started)
-                stopping = self._serve_waiting(deferred, in_flight) or stopping
+                        self._report(1, len(piece.allocation_ids), time.monotonic() - started)
+                    stopping = self._serve_waiting(deferred, in_flight) or stopping
             self._batch_state(stream, VISIBLE, chunk.completes)
         except BaseException as error:
             try:
@@ -551,7 +562,7 @@ class ChainWriter:
     def _write_sqlite(self, dbapi: Any, jobs: list[_Job]) -> None:
         dbapi.execute("BEGIN IMMEDIATE")
         self._key_operations(dbapi.cursor(), jobs, "?")
-        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})  # type: ignore[union-attr]
+        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})
         heads: dict[str, tuple[int, str]] = {}
         for plan_id in plan_ids:
             found = dbapi.execute(
@@ -577,7 +588,7 @@ class ChainWriter:
             self._checkpointer.committed(sum(job.size for job in jobs))
 
     def _write_postgresql(self, dbapi: Any, jobs: list[_Job]) -> None:
-        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})  # type: ignore[union-attr]
+        plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})
         with dbapi.cursor() as cursor:
             self._key_operations(cursor, jobs, "%s")
             heads = self._lock_heads_postgresql(cursor, plan_ids)

@@ -124,7 +124,7 @@ class TestLossTolerance:
         y = choice.risky_fraction
         assert y > 1.0
         # Reference: scipy's brentq on the kinked line's criterion P(R < -L) - (1 - c) = 0.
-        f = lambda v: stats.norm.cdf(-0.35, line.expected_return(v), line.volatility(v)) - 0.05  # noqa: E731
+        f = lambda v: stats.norm.cdf(-0.35, line.expected_return(v), line.volatility(v)) - 0.05
         assert_allclose(y, optimize.brentq(f, 1.0, 3.0, xtol=1e-14), rtol=1e-9)
 
     def test_never_binding_takes_the_maximum(self) -> None:

@@ -6,7 +6,6 @@ from decimal import Decimal
 from typing import Any
 
 import httpx
-import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import secrets
 from collections.abc import Callable
-
 from typing import Any
 
 import orjson
@@ -75,7 +74,7 @@ def append_rows(database: Database) -> AppendRows:
                 created_at=CREATED_AT,
                 allocation_ids=allocation_ids,
                 member_ids=members,
-                bodies=[allocation_body(plan_id, a, m) for a, m in zip(allocation_ids, members)],
+                bodies=[allocation_body(plan_id, a, m) for a, m in zip(allocation_ids, members, strict=False)],
             )
         )
         return allocation_ids

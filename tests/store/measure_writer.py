@@ -96,7 +96,7 @@ def concurrent_singles(db: Database, threads: int, per_thread: int) -> None:
 
     def client(t: int) -> None:
         barrier.wait()
-        for i in range(per_thread):
+        for _i in range(per_thread):
             allocation_id = str(uuid.uuid4())
             batch = LogBatch(plan_id, MIX_VERSION, now_text(), [allocation_id], [f"m{t}"],
                              [body(plan_id, allocation_id, f"m{t}")])
@@ -125,7 +125,7 @@ def one_big_batch(db: Database, rows: int) -> None:
     plan_id = new_plan(db)
     ids = [str(uuid.uuid4()) for _ in range(rows)]  # random, like the API's ids
     members = [f"m{i:07d}" for i in range(rows)]
-    bodies = [body(plan_id, a, m) for a, m in zip(ids, members)]
+    bodies = [body(plan_id, a, m) for a, m in zip(ids, members, strict=False)]
     mean_body = sum(map(len, bodies)) / rows
     batch = LogBatch(plan_id, MIX_VERSION, now_text(), ids, members, bodies)
     started = time.perf_counter()

@@ -6,6 +6,7 @@ Create Date: 2026-12-01
 """
 
 from collections.abc import Sequence
+from datetime import datetime
 
 import sqlalchemy as sa
 from alembic import op
@@ -20,7 +21,7 @@ depends_on: str | Sequence[str] | None = None
 _AUTO_ID = sa.BigInteger().with_variant(sa.Integer(), "sqlite")
 
 
-def _utc_timestamp(name: str) -> sa.Column[sa.DateTime]:
+def _utc_timestamp(name: str) -> sa.Column[datetime]:
     return sa.Column(name, sa.DateTime(timezone=True), nullable=False)
 
 
