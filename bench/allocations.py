@@ -44,7 +44,7 @@ import orjson
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.demo import DEMO_MIX  # noqa: E402
+from service.demo import DEMO_MIX
 
 OPERATOR = "bench-operator-key-0123456789abcdefghijklmnop"
 PLAN = "bench-plan"

@@ -27,9 +27,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-from allocations import OPERATOR, Server, call  # noqa: E402
+from allocations import OPERATOR, Server, call
 
-from service.numerics import build_inputs, solve_mix  # noqa: E402
+from service.numerics import build_inputs, solve_mix
 
 
 def mix_body(n: int, version: str, seed: int = 200) -> dict[str, object]:

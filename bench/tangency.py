@@ -81,13 +81,13 @@ from pathlib import Path
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
-import numpy as np  # noqa: E402
-import numpy.typing as npt  # noqa: E402
-import scipy.linalg  # noqa: E402
+import numpy as np
+import numpy.typing as npt
+import scipy.linalg
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from service.numerics import MixInputs, build_inputs, tangency  # noqa: E402
+from service.numerics import MixInputs, build_inputs, tangency
 
 FloatArray = npt.NDArray[np.float64]
 RISK_FREE_RATE = 0.02

@@ -35,6 +35,9 @@ class Settings(BaseSettings):
     # must stay below the server's max_connections; deploy/kubernetes/deployment.yaml shows the sum.
     db_pool_size: int = Field(default=10, ge=1)
     db_max_overflow: int = Field(default=20, ge=0)
+    # Largest mix the numerical cross-checks run for when the publish request does not say
+    # (they take ~5 s at 200 assets and ~50 s at 400); asked for explicitly above it: 422.
+    max_cross_check_assets: int = Field(default=250, ge=0)
     # How long a replica may answer allocations from the active version it last read, in
     # seconds: an activation on any replica is in force everywhere within this (bounded so that
     # replicas always agree within 5 s).

@@ -17,10 +17,12 @@ from .lifecycle import (
     check_version_name,
     plan_activation,
     plan_retirement,
+    require_candidate,
     require_in_force,
     state_of,
 )
 from .identifiers import AllocationIds
+from .impact import Impact, impact
 from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
 from .line import AllocationLine
 from .members import MEMBER_ID_PATTERN, Members, read_members
@@ -28,8 +30,10 @@ from .mixes import (
     MixTerms,
     MixView,
     canonical_inputs,
+    canonical_text,
     check_decimal_rates,
     content_hash,
+    cross_checks_wanted,
     frontier_document,
     is_finite_document,
     published_document,
@@ -51,6 +55,7 @@ __all__ = [
     "check_version_name",
     "plan_activation",
     "plan_retirement",
+    "require_candidate",
     "require_in_force",
     "state_of",
     "DISCLOSURES",
@@ -67,6 +72,7 @@ __all__ = [
     "Context",
     "Decisions",
     "FieldIssue",
+    "Impact",
     "MemberErrors",
     "Members",
     "MixTerms",
@@ -80,13 +86,16 @@ __all__ = [
     "batch_field",
     "build_policy",
     "canonical_inputs",
+    "canonical_text",
     "check_rates",
     "content_hash",
     "decide",
     "decisions_from_record",
+    "cross_checks_wanted",
     "disclosures_for",
     "format_units",
     "frontier_document",
+    "impact",
     "is_finite_document",
     "line_for",
     "minor_exponent",

@@ -90,6 +90,15 @@ def plan_retirement(version: str, state: MixState, active_version: str | None) -
     return state is MixState.PUBLISHED
 
 
+def require_candidate(version: str, state: MixState, active_version: str | None) -> None:
+    """A version whose impact is previewed must be one that can still be put in force."""
+    if state is MixState.RETIRED:
+        raise LifecycleConflict(
+            "version", f"{version!r} is retired and is never active again; its impact is not previewed",
+            active_version=active_version,
+        )
+
+
 def require_in_force(requested: str, active_version: str | None) -> None:
     """An allocation names the active version; any other is refused (the caller re-reads the
     current mix and retries)."""

@@ -18,7 +18,7 @@ from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
 from service.version import VERSION
 
-from . import allocations, audit, errors, estimating, mixes, operations, plans
+from . import allocations, audit, errors, estimating, impact, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
 from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
@@ -136,7 +136,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
-    for module in (plans, estimating, mixes, allocations, audit, operations):
+    for module in (allocations, plans, estimating, mixes, impact, audit, operations):
         app.include_router(module.router)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)

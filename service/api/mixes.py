@@ -16,6 +16,7 @@ from service.store import MixLifecycle, get_allocation
 from .allocating import rendered
 from .bodies import parse_body, request_body_schema
 from .charts import frontier_svg
+from .impact import impact_document
 from .deps import CallerDep, StateDep
 from .errors import NotFound, Unprocessable
 from .negotiation import choose
@@ -211,18 +212,27 @@ async def review_mix(plan_id: str, version: str, caller: CallerDep, state: State
     view, frontier = await run_in_threadpool(state.mixes.frontier, plan_id, version)
     chart = frontier_chart(view, frontier, f"Risky mix {version}: efficient frontier")
     svg = await run_in_threadpool(frontier_svg, chart)
-    # IMPACT: the impact preview against the active version goes here (API.md, "Impact of a
-    # version before activation"); until it is built the page says "not computed".
+    # The impact against the active version, for a candidate (a published version) only: the
+    # active version against itself moves nobody, and a retired one is never put in force again.
+    active = state.active_version(plan_id)
     impact = None
+    if active is not None and mix_state is MixState.PUBLISHED:
+        impact = await run_in_threadpool(impact_document, state, plan_id, version)
+    not_computed = (
+        "no version is in force yet" if active is None
+        else "this is the version in force" if mix_state is MixState.ACTIVE
+        else "a retired version is never in force again" if mix_state is MixState.RETIRED else None
+    )
     page = review_html(
         plan={"plan_id": plan.plan_id, "name": plan.name},
         mix=doc,
         inputs=state.mixes.inputs(plan_id, version),
         lifecycle=lifecycle_document(entry, mix_state),
-        active_version=state.active_version(plan_id),
+        active_version=active,
         chart_svg=svg,
         lower=[float(x) for x in view.solved.inputs.lower],
         upper=[float(x) for x in view.solved.inputs.upper],
         impact=impact,
+        impact_note=not_computed,
     )
     return HTMLResponse(page, headers={"Content-Security-Policy": CONTENT_SECURITY_POLICY})

@@ -59,9 +59,10 @@ def review_html(
     lower: list[float],
     upper: list[float],
     impact: dict[str, Any] | None = None,
+    impact_note: str | None = None,
 ) -> str:
     """``impact`` is the impact preview's answer (API.md, "Impact of a version before
-    activation"); None renders as "not computed"."""
+    activation"); None renders as "not computed", with ``impact_note`` saying why."""
     assets = [
         {"code": a["code"], "expected_return": a["expected_return"], "volatility": vol,
          "lower": _bound(lo), "upper": _bound(hi)}
@@ -74,7 +75,7 @@ def review_html(
             bounds += [b for b in impact["limited_by"][side] if b not in bounds]
     return _environment().get_template("review.html").render(
         plan=plan, mix=mix, inputs=inputs, lifecycle=lifecycle, active_version=active_version, assets=assets,
-        matrix=matrix, impact=impact, impact_bounds=bounds, chart_svg=Markup(inline_svg(chart_svg)),  # our own matplotlib output
+        matrix=matrix, impact=impact, impact_bounds=bounds, impact_note=impact_note, chart_svg=Markup(inline_svg(chart_svg)),  # our own matplotlib output
         generated_at=datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"), content_security_policy=CONTENT_SECURITY_POLICY,
     )
 

@@ -133,15 +133,27 @@ class AssetIn(Strict):
 Matrix = list[list[MatrixEntry]]
 
 
+class FactorModelIn(Strict):
+    """Covariance B F B' + diag(specific_volatility^2); shapes and F's spectrum are checked
+    with the numbers (service.numerics.build_inputs)."""
+
+    loadings: Annotated[list[list[MatrixEntry]], Field(min_length=1, description="n x k: one row per asset")]
+    factor_covariance: Annotated[Matrix, Field(description="k x k, symmetric positive semi-definite")]
+    specific_volatility: Annotated[list[Volatility], Field(min_length=1, description="one per asset, > 0")]
+
+
 class MixIn(Strict):
     version: str
     assets: Annotated[list[AssetIn], Field(min_length=1)]
     correlation: Matrix | None = None
     covariance: Matrix | None = None
+    factor_model: FactorModelIn | None = None
     risk_free_rate: Rate
     bounds: dict[str, Annotated[list[float], Field(min_length=2, max_length=2)]] | None = None
     long_only: bool = True
-    cross_check: bool = True
+    cross_check: Annotated[bool | None, Field(description=(
+        "run the three numerical cross-checks; left out: run them for mixes of at most "
+        "MIXLINE_MAX_CROSS_CHECK_ASSETS assets (250), whose checks take seconds, not minutes"))] = None
 
     @model_validator(mode="after")
     def _one_matrix(self) -> MixIn:
@@ -155,10 +167,11 @@ class MixIn(Strict):
             )
         except AllocationError as error:
             raise at(error.field, error.reason) from None
-        if self.correlation is None and self.covariance is None:
-            raise at("covariance", "give exactly one of correlation (with volatilities) or covariance")
-        if self.correlation is not None and self.covariance is not None:
-            raise at("correlation", "give exactly one of correlation (with volatilities) or covariance")
+        given = [k for k in ("correlation", "covariance", "factor_model") if getattr(self, k) is not None]
+        if len(given) != 1:
+            said = f"{' and '.join(given)} were given" if given else "none was given"
+            raise at(given[-1] if given else "covariance",
+                     f"give exactly one of correlation (with volatilities), covariance or factor_model; {said}")
         if self.correlation is not None:
             for i, a in enumerate(self.assets):
                 if a.volatility is None:
@@ -373,6 +386,33 @@ class BatchOut(BaseModel):
     disclosures_version: str
     disclosures: list[str]
     results: list[BatchResultOut]
+
+
+class ChangeSummaryOut(BaseModel):
+    mean: float
+    p05: float
+    p50: float
+    p95: float
+    max_abs: float
+
+
+class MoveOut(BaseModel):
+    member_id: str
+    before: float
+    after: float
+
+
+class ImpactOut(BaseModel):
+    """A candidate version's effect on the members whose latest allocation is under the active one."""
+
+    plan_id: str
+    from_version: str
+    to_version: str
+    members: int
+    risky_fraction_change: ChangeSummaryOut
+    limited_by: dict[str, dict[str, int]]
+    largest_moves: list[MoveOut]
+    refused_under_candidate: int
 
 
 class AllocationListOut(BaseModel):

@@ -9,9 +9,12 @@ it live, and allocations use what this process read at most ``active_version_ttl
 from __future__ import annotations
 
 import logging
+import multiprocessing
+import os
 import threading
 import time
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
@@ -24,8 +27,10 @@ from service.allocation import (
     MixView,
     Policy,
     canonical_inputs,
+    canonical_text,
     check_rates,
     content_hash,
+    cross_checks_wanted,
     is_finite_document,
     plan_activation,
     plan_retirement,
@@ -76,6 +81,12 @@ class PlanView:
 
 log = logging.getLogger("mixline.mixes")
 
+#: Frontiers of at least this many assets are solved in a child process (smaller ones take a
+#: few milliseconds: a process hop would cost more than the GIL they hold).
+FRONTIER_PROCESS_MIN_ASSETS = 500
+#: The child's niceness increment: solving a frontier is background work next to requests.
+FRONTIER_PROCESS_NICE = 10
+
 
 class MixCatalog:
     """Published mixes: solved once at publish, stored, and rebuilt from the stored document.
@@ -100,10 +111,30 @@ class MixCatalog:
         self._frontiers: dict[str, Frontier] = {}
         self._pending: dict[str, Future[Frontier]] = {}
         self._solver = ThreadPoolExecutor(max_workers=1, thread_name_prefix="mixline-frontier")
+        # Large frontiers are solved in one child process (forked on first use, so it starts
+        # with everything imported): the critical line is a loop of small numpy calls that
+        # would hold the GIL for hundreds of milliseconds and delay every other request.
+        self._process: ProcessPoolExecutor | None = None
         self._lock = threading.Lock()
 
     def close(self) -> None:
         self._solver.shutdown(wait=False, cancel_futures=False)
+        if self._process is not None:
+            self._process.shutdown(wait=False, cancel_futures=True)
+
+    def _efficient_frontier(self, inputs: MixInputs) -> Frontier:
+        if inputs.n < FRONTIER_PROCESS_MIN_ASSETS or not hasattr(os, "fork"):
+            return efficient_frontier(inputs)
+        try:
+            if self._process is None:
+                # Lower CPU priority: on a busy node the scheduler serves requests first.
+                self._process = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"),
+                                                    initializer=os.nice, initargs=(FRONTIER_PROCESS_NICE,))
+            return self._process.submit(efficient_frontier, inputs).result()
+        except (BrokenProcessPool, OSError):
+            log.warning("the frontier process failed; solving in this process", exc_info=True)
+            self._process = None
+            return efficient_frontier(inputs)
 
     def frontier(self, plan_id: str, version: str) -> tuple[MixView, Frontier]:
         view = self.view(plan_id, version)
@@ -126,19 +157,27 @@ class MixCatalog:
             if stored is not None:
                 found = Frontier.from_document(stored, len(inputs.codes))
             else:
-                found = efficient_frontier(inputs)
+                found = self._efficient_frontier(inputs)
+                # Stored next on the same worker: whoever waits for this frontier is answered
+                # from memory without waiting for the database.
                 try:
-                    with self._db.writing() as s:
-                        insert_frontier(s, content_hash=digest, document=found.to_document())
-                except SQLAlchemyError:
-                    # Kept in memory all the same; a later replica solves it once more.
-                    log.warning("could not store the frontier of %s", digest, exc_info=True)
+                    self._solver.submit(self._store_frontier, digest, found)
+                except RuntimeError:  # shutting down: store it now
+                    self._store_frontier(digest, found)
             with self._lock:
                 self._frontiers[digest] = found
             return found
         finally:
             with self._lock:
                 self._pending.pop(digest, None)
+
+    def _store_frontier(self, digest: str, found: Frontier) -> None:
+        try:
+            with self._db.writing() as s:
+                insert_frontier(s, content_hash=digest, document=found.to_document())
+        except SQLAlchemyError:
+            # Kept in memory all the same; a later replica solves it once more.
+            log.warning("could not store the frontier of %s", digest, exc_info=True)
 
     def _remember(
         self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any], inputs: dict[str, Any]
@@ -266,23 +305,31 @@ class MixCatalog:
             covariance=request.covariance,
             bounds=request.bounds,
             long_only=request.long_only,
+            # The validated lists as they are (model_dump would copy 100,000 numbers once more).
+            factor_model=None if request.factor_model is None else dict(request.factor_model),
         )
-        digest = content_hash(canonical)
+        text = canonical_text(canonical)
+        digest = content_hash(text)
         existing = self._load(plan.plan_id, request.version)
         if existing is not None:
             return self._same_or_conflict(request.version, digest, existing)
         check_rates(plan.policy, request.risk_free_rate)
+        checks = cross_checks_wanted(request.cross_check, len(request.assets), self._settings.max_cross_check_assets)
         # The same content solved before (another plan, or an earlier version) is not solved again.
         solved = self._solved_by_hash.get(digest)
-        if solved is None or (request.cross_check and not solved.cross_checks):
+        if solved is None or (checks and not solved.cross_checks):
             solved = solve(
                 canonical,
-                cross_check=request.cross_check,
+                cross_check=checks,
                 max_condition_number=self._settings.max_condition_number,
             )
         doc = published_document(request.version, digest, solved)
         if not is_finite_document(doc):
             raise AllocationError("covariance", "the solution is not finite; the inputs are degenerate")
+        if solved.inputs.n >= FRONTIER_PROCESS_MIN_ASSETS and digest not in self._frontiers:
+            # A large frontier is solved in the child process: start it now, while this mix is
+            # stored and answered (a small one waits for the answer: in a thread it would slow it).
+            self._frontier_soon(digest, solved.inputs)
         try:
             with self._db.writing() as s:
                 insert_mix(
@@ -290,7 +337,7 @@ class MixCatalog:
                     plan_id=plan.plan_id,
                     version=request.version,
                     content_hash=digest,
-                    inputs=canonical,
+                    inputs=text.decode(),
                     solved={"published": doc, "numerics": solved.to_document()},
                     published_by=published_by,
                 )

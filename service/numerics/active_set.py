@@ -26,15 +26,19 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-import scipy.linalg
-from scipy.linalg.lapack import dpotrf as _potrf
-from scipy.linalg.lapack import dpotrs as _potrs
 
 from service.numerics.errors import InputError
 from service.numerics.max_return import FIXED, FREE, LOWER, UPPER, max_return_vertex
+from service.numerics.risk import FreeBlock, Risk, as_risk
 
-__all__ = ["Face", "BoxProblem", "solve_box_problem", "tangency_kkt_residual",
-           "min_variance_kkt_residual", "KKT_TOLERANCE"]
+__all__ = [
+    "KKT_TOLERANCE",
+    "BoxProblem",
+    "Face",
+    "min_variance_kkt_residual",
+    "solve_box_problem",
+    "tangency_kkt_residual",
+]
 
 FloatArray = npt.NDArray[np.float64]
 StateArray = npt.NDArray[np.int8]
@@ -68,9 +72,10 @@ class Face:
 class BoxProblem:
     """One of the two programs on fixed data; ``excess`` is None for minimum variance."""
 
-    def __init__(self, covariance: FloatArray, lower: FloatArray, upper: FloatArray,
+    def __init__(self, covariance: FloatArray | Risk, lower: FloatArray, upper: FloatArray,
                  excess: FloatArray | None) -> None:
-        self.s = np.ascontiguousarray(covariance)
+        # A dense matrix or a factor model: every product and free-block solve goes through it.
+        self.risk = as_risk(covariance)
         self.lo = lower
         self.hi = upper
         self.e = excess
@@ -90,7 +95,7 @@ class BoxProblem:
         self.fixed = lower == upper
         self.any_fixed = bool(self.fixed.any())
         self.e_scale = float(np.abs(excess).max()) if excess is not None else 0.0
-        self.diag_max = float(covariance.diagonal().max())
+        self.diag_max = float(self.risk.diagonal.max())
         # sum|w| <= 1 + 2 sum(max(-lo, 0)) on the budget and max|w| <= the largest bound, so
         # with finite bounds both tolerances are scaled without a pass over w.
         if all_finite:
@@ -120,25 +125,17 @@ class BoxProblem:
         c = self.bound_values(state)
         held = np.flatnonzero(c)
         c_held = c[held]
-        # Row gathers of a C-ordered matrix are cheap; S is symmetric, so rows = columns.
-        s_c = c_held @ self.s[held] if held.size else np.zeros(self.n)
-        rows_f = self.s[free]
+        s_c = self.risk.columns_times(held, c_held)
         f = free.size
-        if self.e is None:
-            return self._solve_min_variance(free, held, c_held, s_c, rows_f, f)
-        return self._solve_tangency(free, held, c_held, s_c, rows_f, f)
-
-    def _factor_solve(self, rows_f: FloatArray, free: IndexArray, rhs: FloatArray) -> FloatArray | None:
-        block = rows_f[:, free]
-        try:
-            factor = scipy.linalg.cho_factor(block, lower=False, check_finite=False, overwrite_a=True)
-        except np.linalg.LinAlgError:
+        block = self.risk.block(free) if f else None
+        if block is None:
             return None
-        out: FloatArray = scipy.linalg.cho_solve(factor, rhs, check_finite=False)
-        return out
+        if self.e is None:
+            return self._solve_min_variance(free, held, c_held, s_c, block, f)
+        return self._solve_tangency(free, held, c_held, s_c, block, f)
 
     def _solve_min_variance(self, free: IndexArray, held: IndexArray, c_held: FloatArray,
-                            s_c: FloatArray, rows_f: FloatArray, f: int) -> Face | None:
+                            s_c: FloatArray, block: FreeBlock, f: int) -> Face | None:
         y = np.zeros(self.n)
         y[held] = c_held
         if f == 0:
@@ -147,9 +144,7 @@ class BoxProblem:
         rhs = np.empty((f, 2))
         rhs[:, 0] = 1.0
         rhs[:, 1] = s_c[free]
-        solved = self._factor_solve(rows_f, free, rhs)
-        if solved is None:
-            return None
+        solved = block.solve(rhs)
         v, r = solved[:, 0], solved[:, 1]
         one_v = float(v.sum())
         if not one_v > 0.0:
@@ -157,11 +152,11 @@ class BoxProblem:
         beta = (budget + float(r.sum())) / one_v
         y_f = beta * v - r
         y[free] = y_f
-        grad = y_f @ rows_f + s_c - beta
+        grad = block.spread(y_f) + s_c - beta
         return Face(y=y, t=1.0, alpha=0.0, beta=beta, grad=grad)
 
     def _solve_tangency(self, free: IndexArray, held: IndexArray, c_held: FloatArray,
-                        s_c: FloatArray, rows_f: FloatArray, f: int) -> Face | None:
+                        s_c: FloatArray, block: FreeBlock, f: int) -> Face | None:
         assert self.e is not None
         e = self.e
         e_b = float(e[held] @ c_held)
@@ -175,9 +170,7 @@ class BoxProblem:
         rhs[:, 0] = e_f
         rhs[:, 1] = 1.0
         rhs[:, 2] = h
-        solved = self._factor_solve(rows_f, free, rhs)
-        if solved is None:
-            return None
+        solved = block.solve(rhs)
         u, v, r = solved[:, 0], solved[:, 1], solved[:, 2]
         eu, ev, er = float(e_f @ u), float(e_f @ v), float(e_f @ r)
         one_v, one_r = float(v.sum()), float(r.sum())
@@ -195,7 +188,7 @@ class BoxProblem:
         y = np.zeros(self.n)
         y[held] = c_held * t
         y[free] = y_f
-        grad = y_f @ rows_f + t * s_c - alpha * e - beta
+        grad = block.spread(y_f) + t * s_c - alpha * e - beta
         return Face(y=y, t=float(t), alpha=float(alpha), beta=float(beta), grad=grad)
 
     # --- decisions on a face solution -------------------------------------------------
@@ -248,7 +241,7 @@ def _pdas(problem: BoxProblem, state: StateArray, max_iter: int,
     Face is in weight units. Returns None on a cycle, a singular face or t <= 0, for the
     caller's primal fallback.
     """
-    s = problem.s
+    risk = problem.risk
     tangency = problem.e is not None
     lo, hi = problem.lo, problem.hi
     state = state.copy()
@@ -256,7 +249,7 @@ def _pdas(problem: BoxProblem, state: StateArray, max_iter: int,
     base = problem.base.copy()
     held = np.flatnonzero(c)
     if held.size:
-        base[:, 2] = c[held] @ s.take(held, axis=0)
+        base[:, 2] = risk.columns_times(held, c[held])
     side = _SIDE[state + 1]
     c_abs = float(np.abs(c).sum())
     e_scale, diag_max = problem.e_scale, problem.diag_max
@@ -273,17 +266,13 @@ def _pdas(problem: BoxProblem, state: StateArray, max_iter: int,
         f = free.size
         if f == 0:
             return None
-        rows = s.take(free, axis=0)
-        # The free block is symmetric: its C-ordered copy read as Fortran is the same matrix.
-        chol, info = _potrf(rows[:, free].T, lower=1, clean=0, overwrite_a=1)
-        if info != 0:
+        block = risk.block(free)
+        if block is None:
             return None
         e_b, c_sum, q = (c @ base).tolist()
         rhs = base.take(free, axis=0)
         if tangency:
-            sol, info = _potrs(chol, rhs, lower=1)
-            if info != 0:
-                return None
+            sol = block.solve(rhs)
             (eu, ev, er), (_, one_v, one_r), (_, _, hr) = (rhs.T @ sol).tolist()
             s_b = c_sum - 1.0
             abt = _solve3(eu, ev, e_b - er, ev, one_v, s_b - one_r, er - e_b, one_r - s_b, q - hr)
@@ -292,16 +281,14 @@ def _pdas(problem: BoxProblem, state: StateArray, max_iter: int,
             a, b = abt[0] / abt[2], abt[1] / abt[2]
             w_f = sol @ np.array([a, b, -1.0])
         else:
-            sol, info = _potrs(chol, rhs[:, 1:], lower=1)
-            if info != 0:
-                return None
+            sol = block.solve(rhs[:, 1:])
             one_v, one_r = sol.sum(axis=0).tolist()
             if not one_v > 0.0:
                 return None
             a, b = 0.0, (1.0 - c_sum + one_r) / one_v
             w_f = sol @ np.array([b, -1.0])
         # Reduced gradient S w - a e - b 1 on every asset; base @ (-a, -b, 1) = S c - a e - b.
-        grad = w_f @ rows
+        grad = block.spread(w_f)
         grad += base @ np.array([-a, -b, 1.0])
         if finite_box:
             tol_p = tol_p_box
@@ -342,7 +329,7 @@ def _pdas(problem: BoxProblem, state: StateArray, max_iter: int,
         side[release] = 0.0
         changed = (c != c_old).nonzero()[0]
         if changed.size:
-            base[:, 2] += (c[changed] - c_old[changed]) @ s.take(changed, axis=0)
+            base[:, 2] += risk.columns_times(changed, c[changed] - c_old[changed])
             c_abs = float(np.abs(c).sum())
     return None
 
@@ -409,7 +396,7 @@ def _primal(problem: BoxProblem, max_iter: int) -> tuple[Face, StateArray, int]:
     raise RuntimeError(f"primal active-set search did not finish in {max_iter} steps")
 
 
-def tangency_kkt_residual(s: FloatArray, excess: FloatArray, lo: FloatArray, hi: FloatArray,
+def tangency_kkt_residual(s: FloatArray | Risk, excess: FloatArray, lo: FloatArray, hi: FloatArray,
                           w: FloatArray, state: StateArray, beta_hint: float,
                           sw: FloatArray | None = None) -> float:
     """Scale-free KKT residual of w as the maximum-Sharpe portfolio.
@@ -417,24 +404,26 @@ def tangency_kkt_residual(s: FloatArray, excess: FloatArray, lo: FloatArray, hi:
     Optimality of max (e'w)/sqrt(w'Sw) on {1'w = 1, lo <= w <= hi} reads
     S w - a e - b 1 = (bound multipliers) with a = w'Sw / e'w, multipliers >= 0 at lower
     bounds and <= 0 at upper bounds, zero on free assets. ``sw`` (= S w) is computed
-    densely when not given.
+    when not given (``s`` a dense matrix or a Risk).
     """
+    risk = as_risk(s)
     if sw is None:
-        sw = s @ w
+        sw = risk.times(w)
     gain = float(excess @ w)
     if not gain > 0.0:
         return math.inf
     a = float(w @ sw) / gain
     partial = sw - a * excess
-    return _box_residual(float(np.max(np.diag(s))), partial, lo, hi, w, state, beta_hint,
+    return _box_residual(float(np.max(risk.diagonal)), partial, lo, hi, w, state, beta_hint,
                          extra_scale=abs(a) * float(np.max(np.abs(excess))))
 
 
-def min_variance_kkt_residual(s: FloatArray, lo: FloatArray, hi: FloatArray, w: FloatArray,
+def min_variance_kkt_residual(s: FloatArray | Risk, lo: FloatArray, hi: FloatArray, w: FloatArray,
                               state: StateArray, beta_hint: float, sw: FloatArray | None = None) -> float:
     """Scale-free KKT residual of w as the minimum-variance portfolio (S w - b 1 = multipliers)."""
-    return _box_residual(float(np.max(np.diag(s))), s @ w if sw is None else sw, lo, hi, w, state,
-                         beta_hint, extra_scale=0.0)
+    risk = as_risk(s)
+    return _box_residual(float(np.max(risk.diagonal)), risk.times(w) if sw is None else sw, lo, hi, w,
+                         state, beta_hint, extra_scale=0.0)
 
 
 def _box_residual(diag_max: float, partial: FloatArray, lo: FloatArray, hi: FloatArray, w: FloatArray,
@@ -491,13 +480,13 @@ def _finish(problem: BoxProblem, face: Face, state: StateArray, sw: FloatArray |
     w[bounded] = problem.bound_values(state)[bounded]
     if sw is None:
         support = np.flatnonzero(w)
-        sw = w[support] @ problem.s.take(support, axis=0)
+        sw = problem.risk.columns_times(support, w[support])
     variance = float(w @ sw)
     if problem.e is not None:
-        res = tangency_kkt_residual(problem.s, problem.e, problem.lo, problem.hi, w, state,
+        res = tangency_kkt_residual(problem.risk, problem.e, problem.lo, problem.hi, w, state,
                                     face.beta / face.t, sw=sw)
     else:
-        res = min_variance_kkt_residual(problem.s, problem.lo, problem.hi, w, state, face.beta, sw=sw)
+        res = min_variance_kkt_residual(problem.risk, problem.lo, problem.hi, w, state, face.beta, sw=sw)
     return w, res, variance
 
 

@@ -1,7 +1,8 @@
 """Closed forms for a mix without bounds (Merton 1972, "An analytic derivation of the
 efficient portfolio frontier"): tangency, minimum variance and the two-fund frontier.
 
-All three solve against one Cholesky factor of the covariance; nothing here is iterative.
+All three solve against one factorisation of the covariance (Cholesky, or Woodbury for a
+factor model); nothing here is iterative.
 """
 
 from __future__ import annotations
@@ -10,7 +11,6 @@ import math
 
 import numpy as np
 import numpy.typing as npt
-import scipy.linalg
 
 from service.numerics.errors import InputError
 from service.numerics.inputs import MixInputs
@@ -27,10 +27,12 @@ class ClosedForm:
     """Tangency and minimum-variance weights of an unbounded mix, from one factorisation."""
 
     def __init__(self, inputs: MixInputs) -> None:
-        factor = scipy.linalg.cho_factor(inputs.covariance, lower=True, check_finite=False)
+        block = inputs.risk.block(np.arange(inputs.n))
+        if block is None:
+            raise RuntimeError("the validated covariance could not be factorised")
         excess = inputs.expected_returns - inputs.risk_free_rate
         ones = np.ones(inputs.n)
-        solved = scipy.linalg.cho_solve(factor, np.column_stack([excess, ones]), check_finite=False)
+        solved = block.solve(np.column_stack([excess, ones]))
         self.s_inv_e: FloatArray = solved[:, 0]
         self.s_inv_1: FloatArray = solved[:, 1]
         self.one_s_inv_e = float(ones @ self.s_inv_e)

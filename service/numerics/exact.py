@@ -24,7 +24,7 @@ from service.numerics.max_return import FREE, max_return_vertex
 from service.numerics.portfolio import Portfolio, portfolio_from_weights
 from service.numerics.warm_start import min_variance_start, tangency_start
 
-__all__ = ["tangency", "min_variance", "min_variance_with_solution", "only_feasible_weights"]
+__all__ = ["min_variance", "min_variance_with_solution", "only_feasible_weights", "tangency"]
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -69,10 +69,10 @@ def tangency(inputs: MixInputs) -> tuple[Portfolio, float]:
     if inputs.unconstrained:
         w = ClosedForm(inputs).tangency_weights()
         state = np.full(inputs.n, FREE, dtype=np.int8)
-        residual = tangency_kkt_residual(inputs.covariance, excess, inputs.lower, inputs.upper, w, state, 0.0)
+        residual = tangency_kkt_residual(inputs.risk, excess, inputs.lower, inputs.upper, w, state, 0.0)
         _check_residual(residual, "closed-form tangency")
         return portfolio_from_weights(inputs, w, "closed_form"), residual
-    problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, excess)
+    problem = BoxProblem(inputs.risk, inputs.lower, inputs.upper, excess)
 
     def check_some_portfolio_beats_rf() -> None:
         # Only needed when the fast iteration fails: a verified answer has e'w > 0.
@@ -98,10 +98,10 @@ def min_variance_with_solution(inputs: MixInputs) -> tuple[Portfolio, BoxSolutio
     if inputs.unconstrained:
         w = ClosedForm(inputs).min_variance_weights()
         state = np.full(inputs.n, FREE, dtype=np.int8)
-        residual = min_variance_kkt_residual(inputs.covariance, inputs.lower, inputs.upper, w, state, 0.0)
+        residual = min_variance_kkt_residual(inputs.risk, inputs.lower, inputs.upper, w, state, 0.0)
         _check_residual(residual, "closed-form minimum variance")
         return portfolio_from_weights(inputs, w, "closed_form"), None
-    problem = BoxProblem(inputs.covariance, inputs.lower, inputs.upper, None)
+    problem = BoxProblem(inputs.risk, inputs.lower, inputs.upper, None)
     solution = solve_box_problem(problem, min_variance_start(inputs))
     return portfolio_from_weights(inputs, solution.weights, "active_set", solution.variance), solution
 

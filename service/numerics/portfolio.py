@@ -37,7 +37,7 @@ def portfolio_from_weights(inputs: MixInputs, weights: FloatArray, method: str,
     w.setflags(write=False)
     mean = float(inputs.expected_returns @ w)
     if variance is None:
-        variance = float(w @ inputs.covariance @ w)
+        variance = inputs.risk.variance(w)
     variance = max(variance, 0.0)
     vol = math.sqrt(variance)
     sharpe = (mean - inputs.risk_free_rate) / vol if vol > 0.0 else math.nan

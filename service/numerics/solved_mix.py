@@ -1,7 +1,11 @@
 """A solved risky-mix version: every exact answer plus the cross-checks, and its
 JSON-able document form (rebuilt without solving anything).
 
-Document layout (``format`` = ``DOCUMENT_FORMAT``): floats, strings and lists only.
+Document layout (``format`` = ``DOCUMENT_FORMAT``): floats, strings, lists and the integer
+counts and asset indices of the frontier's corner changes (``Frontier.to_document``). The
+inputs hold either ``covariance_f64le`` (the n x n matrix as base64 of little-endian float64
+bytes; documents with a ``covariance`` list of rows are read too) or ``factor_model``
+(loadings, factor covariance, specific volatilities: never expanded to n x n).
 Infinite bounds are written as the strings ``"-inf"`` / ``"inf"``; the frontier's
 ``shape`` is ``"bounded"`` or ``"unbounded_above"``. Floats are written as Python floats,
 whose JSON text round-trips bit for bit.
@@ -9,6 +13,7 @@ whose JSON text round-trips bit for bit.
 
 from __future__ import annotations
 
+import base64
 import math
 from dataclasses import dataclass, replace
 from typing import Any
@@ -21,8 +26,9 @@ from service.numerics.frontier import Frontier, frontier_from_min_variance
 from service.numerics.inputs import MixInputs
 from service.numerics.numerical_routes import CrossCheck, cross_checks
 from service.numerics.portfolio import Portfolio
+from service.numerics.risk import DenseRisk, FactorModel, FactorRisk, Risk
 
-__all__ = ["SolvedMix", "solve_mix", "DOCUMENT_FORMAT"]
+__all__ = ["DOCUMENT_FORMAT", "SolvedMix", "solve_mix"]
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -47,12 +53,19 @@ class SolvedMix:
     def to_document(self) -> dict[str, Any]:
         """JSON-able form (floats, strings, lists); ``from_document`` inverts it exactly."""
         inp = self.inputs
+        model = inp.factor_model
+        # A factor model is stored as given (n k + k^2 + n numbers), never as the n x n matrix.
+        risk: dict[str, Any] = (
+            {"covariance_f64le": _packed(inp.covariance)} if model is None else
+            {"factor_model": {"loadings": model.loadings.tolist(),
+                              "factor_covariance": model.factor_covariance.tolist(),
+                              "specific_volatility": _floats(model.specific_volatility)}})
         return {
             "format": DOCUMENT_FORMAT,
             "inputs": {
                 "codes": list(inp.codes),
                 "expected_returns": _floats(inp.expected_returns),
-                "covariance": [_floats(row) for row in inp.covariance],
+                **risk,
                 "risk_free_rate": float(inp.risk_free_rate),
                 "lower": [_bound_out(x) for x in inp.lower],
                 "upper": [_bound_out(x) for x in inp.upper],
@@ -77,10 +90,23 @@ class SolvedMix:
         raw = doc["inputs"]
         codes = tuple(str(c) for c in raw["codes"])
         n = len(codes)
+        risk: Risk
+        if "factor_model" in raw:
+            model = raw["factor_model"]
+            loadings = np.array(model["loadings"], dtype=np.float64)
+            k = loadings.shape[1] if loadings.ndim == 2 else -1
+            risk = FactorRisk(FactorModel(
+                loadings=_frozen(loadings, (n, k), "inputs.factor_model.loadings"),
+                factor_covariance=_array(model["factor_covariance"], (k, k), "inputs.factor_model.factor_covariance"),
+                specific_volatility=_array(model["specific_volatility"], (n,), "inputs.factor_model.specific_volatility"),
+            ))
+        else:
+            dense = _unpacked(raw["covariance_f64le"], n) if "covariance_f64le" in raw else raw["covariance"]
+            risk = DenseRisk(_array(dense, (n, n), "inputs.covariance"))
         inputs = MixInputs(
             codes=codes,
             expected_returns=_array(raw["expected_returns"], (n,), "inputs.expected_returns"),
-            covariance=_array(raw["covariance"], (n, n), "inputs.covariance"),
+            risk=risk,
             risk_free_rate=float(raw["risk_free_rate"]),
             lower=_frozen(np.array([_bound_in(x) for x in raw["lower"]], dtype=np.float64), (n,), "inputs.lower"),
             upper=_frozen(np.array([_bound_in(x) for x in raw["upper"]], dtype=np.float64), (n,), "inputs.upper"),
@@ -97,8 +123,22 @@ class SolvedMix:
                    frontier=frontier, cross_checks=checks, kkt_residual=float(doc["kkt_residual"]))
 
 
+def _packed(a: FloatArray) -> str:
+    """An array as base64 of its little-endian float64 bytes: exact, and ~20x quicker to write
+    and read than a million JSON numbers (the published inputs keep the numbers as given)."""
+    return base64.b64encode(np.ascontiguousarray(a, dtype="<f8").tobytes()).decode("ascii")
+
+
+def _unpacked(text: str, n: int) -> FloatArray:
+    flat = np.frombuffer(base64.b64decode(text), dtype="<f8")
+    if flat.size != n * n:
+        raise ValueError(f"inputs.covariance_f64le holds {flat.size} numbers, expected {n * n}")
+    return flat.astype(np.float64).reshape(n, n)
+
+
 def _floats(a: FloatArray) -> list[float]:
-    return [float(x) for x in a]
+    out: list[float] = np.asarray(a, dtype=np.float64).tolist()  # Python floats, exactly
+    return out
 
 
 def _bound_out(x: float) -> float | str:

@@ -39,14 +39,14 @@ def tangency_start(inputs: MixInputs, excess: npt.NDArray[np.float64]) -> StateA
     Sharpe ratio improves also avoids that, but costs a product per re-rank and rejects
     re-fills whose active set is better even though their vertex is not.)
     """
-    lo, hi, s = inputs.lower, inputs.upper, inputs.covariance
+    lo, hi, risk = inputs.lower, inputs.upper, inputs.risk
     vertex = max_return_vertex(excess / inputs.volatilities, lo, hi)
     state, w = vertex.state, vertex.weights
     for _ in range(_RERANKS):
         if np.count_nonzero(state == UPPER) < _RERANK_MIN_MOVES:
             break
         held = np.flatnonzero(w)
-        sw = w[held] @ s.take(held, axis=0)
+        sw = risk.columns_times(held, w[held])
         gain = float(excess @ w)
         if not gain > 0.0:
             break

@@ -13,7 +13,7 @@ from datetime import datetime
 from typing import Any
 
 import orjson
-from sqlalchemy import exists, or_, select, update
+from sqlalchemy import exists, func, or_, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -143,10 +143,11 @@ def insert_mix(
     plan_id: str,
     version: str,
     content_hash: str,
-    inputs: dict[str, Any],
+    inputs: dict[str, Any] | str,
     solved: dict[str, Any],
     published_by: str | None = None,
 ) -> None:
+    """``inputs`` may come as its JSON text already (sorted keys, as ``json_text`` writes it)."""
     _insert_new(
         s,
         Mix,
@@ -155,7 +156,7 @@ def insert_mix(
             plan_id=plan_id,
             version=version,
             content_hash=content_hash,
-            inputs=json_text(inputs),
+            inputs=inputs if isinstance(inputs, str) else json_text(inputs),
             solved=json_text(solved),
             created_at=utc_now(),
             published_by=published_by,
@@ -277,6 +278,25 @@ def list_allocations(s: Session, plan_id: str, member_id: str, *, limit: int = 1
             .where(Allocation.plan_id == plan_id, Allocation.member_id == member_id, _visible())
             .order_by(Allocation.seq.desc())
             .limit(limit)
+        ).scalars()
+    )
+
+
+def latest_allocations(s: Session, plan_id: str, mix_version: str) -> list[str]:
+    """The bodies of the plan's members' latest logged allocations, for the members whose latest
+    one was made with ``mix_version`` (one query; the (plan, member, seq) index serves the max)."""
+    latest = (
+        select(Allocation.member_id, func.max(Allocation.seq).label("seq"))
+        .where(Allocation.plan_id == plan_id, _visible())
+        .group_by(Allocation.member_id)
+        .subquery()
+    )
+    return list(
+        s.execute(
+            select(Allocation.body)
+            .join(latest, (Allocation.member_id == latest.c.member_id) & (Allocation.seq == latest.c.seq))
+            .where(Allocation.plan_id == plan_id, Allocation.mix_version == mix_version)
+            .order_by(Allocation.seq)
         ).scalars()
     )
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import copy
 from decimal import Decimal
 from typing import Any
@@ -291,8 +292,15 @@ async def test_frontier_is_solved_once_after_publish_and_stored(world: World, ne
     mix = await world.publish(new_plan_id, keys)
     first = await world.client.get(f"/v1/plans/{new_plan_id}/mixes/{DEMO_MIX['version']}/frontier", params={"points": 7}, headers=keys["portal"])
     assert first.status_code == 200
+    # Stored beside the mix just after it is answered from memory (the solver thread stores it
+    # next): wait for that write, a few seconds at most.
+    for _ in range(100):
+        with world.database.reading() as s:
+            if get_frontier(s, mix["content_hash"]) is not None:
+                break
+        await asyncio.sleep(0.05)
     with world.database.reading() as s:
-        assert get_frontier(s, mix["content_hash"]) is not None  # stored beside the mix
+        assert get_frontier(s, mix["content_hash"]) is not None
     # Another replica (a fresh catalog) reads the stored frontier and never solves one.
     def no_solving(*_: object) -> None:
         raise AssertionError("the frontier was solved again")

@@ -57,6 +57,22 @@ async def test_the_page_is_one_self_contained_document(world: World, new_plan_id
     assert_problem(await world.client.get(f"/v1/plans/{new_plan_id}/mixes/never/review", headers=keys["committee"]), 404)
 
 
+async def test_a_candidates_page_shows_its_impact(world: World, new_plan_id: str) -> None:
+    keys = await world.plan(new_plan_id)
+    await world.publish(new_plan_id, keys)
+    for i in range(3):  # three members under the active version
+        member = {"member_id": f"m-{i}", "mix_version": VERSION, "amount": "1000.00", "preference": {"risk_aversion": 2 + i}}
+        assert (await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=member, headers=keys["portal"])).status_code == 201
+    await world.publish(new_plan_id, keys, DEMO_MIX | {"version": "2027-q1", "risk_free_rate": 0.029}, activate=False)
+    page = (await world.client.get(f"/v1/plans/{new_plan_id}/mixes/2027-q1/review", headers=keys["committee"])).text
+    assert '<span id="impact-members">3</span>' in page and "not computed" not in page
+    # The numbers are the impact preview's own (same request, same rules).
+    preview = (await world.client.post(f"/v1/plans/{new_plan_id}/mixes/2027-q1/impact", headers=keys["committee"])).json()
+    assert preview["members"] == 3 and f"{100 * preview['risky_fraction_change']['mean']:+.2f}" in page
+    active = (await world.client.get(f"/v1/plans/{new_plan_id}/mixes/{VERSION}/review", headers=keys["committee"])).text
+    assert "not computed (this is the version in force)" in active
+
+
 def test_an_impact_given_is_shown() -> None:
     # The impact section renders the contract's shape (API.md, "Impact of a version before
     # activation") when one is passed in; these numbers are an invented example, not a result.
@@ -73,7 +89,7 @@ def test_an_impact_given_is_shown() -> None:
         chart_svg="<svg></svg>", lower=[0.0], upper=[1.0], impact=impact,
     )
     assert "not computed" not in page
-    assert "1200 members" in page and "+1.20" in page and "m-000417" in page and "min_risky_fraction" in page
+    assert '<span id="impact-members">1200</span>' in page and "+1.20" in page and "m-000417" in page and "min_risky_fraction" in page
 
 
 def _mix() -> dict[str, Any]:

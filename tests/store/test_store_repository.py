@@ -43,8 +43,8 @@ def test_public_names_are_exactly_the_interface() -> None:
             "GENESIS_HASH", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream", "IdempotencyCompletion", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
-            "list_allocations", "secret_hash", "secret_matches", "MixLifecycle", "list_lifecycle",
-            "lock_lifecycle", "record_activation", "record_retirement",
+            "latest_allocations", "list_allocations", "secret_hash", "secret_matches", "MixLifecycle",
+            "list_lifecycle", "lock_lifecycle", "record_activation", "record_retirement",
             "upsert_key", "verify_chain",
         ]
     )

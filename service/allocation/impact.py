@@ -1,0 +1,122 @@
+"""What a candidate mix version would do to the plan's members, before anyone activates it.
+
+Each member's latest logged allocation is taken as their request (the same preference, the same
+money), recomputed under the candidate by the allocation pipeline's own rules (`decide`), and
+compared with what was logged. Nothing is logged. Members are read straight from their records
+into columns: the records were checked when they were logged, and 300,000 of them must not go
+through JSON again.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .engine import Setting, decide
+from .issues import MemberErrors, batch_field
+from .members import NOT_HELD, Members
+from .preferences import KIND_NAMES, LIMIT_NAMES, MAX_LOSS, PreferenceColumns
+
+# The largest moves shown by member (the distribution covers everyone).
+LARGEST_MOVES = 10
+
+
+def members_from_records(records: Sequence[Mapping[str, Any]]) -> tuple[Members, NDArray[np.float64], list[str | None]]:
+    """The members the records were made for, their logged risky fractions and bounds."""
+    n = len(records)
+    kind = np.zeros(n, dtype=np.int8)
+    value, confidence, horizon = np.zeros(n), np.zeros(n), np.ones(n)
+    total = np.zeros(n, dtype=np.int64)
+    held_risky = np.full(n, NOT_HELD, dtype=np.int64)
+    held_safe = np.full(n, NOT_HELD, dtype=np.int64)
+    contribution = np.zeros(n, dtype=np.int64)
+    logged = np.zeros(n)
+    bounds: list[str | None] = [None] * n
+    index = {name: i for i, name in enumerate(KIND_NAMES)}
+    for i, r in enumerate(records):
+        preference = r["preference"]
+        k = MAX_LOSS if "max_loss" in preference else index[next(iter(preference))]
+        kind[i] = k
+        value[i] = preference[KIND_NAMES[k]]
+        if k == MAX_LOSS:
+            confidence[i], horizon[i] = preference["confidence"], preference["horizon_years"]
+        total[i] = r["amount_minor"]
+        if "holdings_minor" in r:
+            held_risky[i], held_safe[i] = r["holdings_minor"]
+            contribution[i] = r["contribution_minor"]
+        logged[i] = r["risky_fraction"]
+        bounds[i] = r["limited_by"]
+    members = Members(
+        [r["member_id"] for r in records], PreferenceColumns(kind, value, confidence, horizon),
+        total, held_risky, held_safe, contribution,
+    )
+    return members, logged, bounds
+
+
+@dataclass(frozen=True)
+class Impact:
+    members: int
+    change: NDArray[np.float64]  # after - before, per member recomputed
+    before: NDArray[np.float64]
+    after: NDArray[np.float64]
+    member_ids: list[str]
+    limited_before: dict[str, int]
+    limited_after: dict[str, int]
+    refused: int  # members no risky fraction satisfies under the candidate (a loss bound)
+
+    def document(self) -> dict[str, Any]:
+        c = self.change
+        if c.size:
+            p05, p50, p95 = np.percentile(c, [5, 50, 95]).tolist()
+            summary = {"mean": float(c.mean()), "p05": p05, "p50": p50, "p95": p95, "max_abs": float(np.abs(c).max())}
+        else:
+            summary = {"mean": 0.0, "p05": 0.0, "p50": 0.0, "p95": 0.0, "max_abs": 0.0}
+        top = np.argsort(-np.abs(c), kind="stable")[:LARGEST_MOVES].tolist()
+        return {
+            "members": self.members,
+            "risky_fraction_change": summary,
+            "limited_by": {"before": self.limited_before, "after": self.limited_after},
+            "largest_moves": [
+                {"member_id": self.member_ids[i], "before": float(self.before[i]), "after": float(self.after[i])}
+                for i in top
+            ],
+            "refused_under_candidate": self.refused,
+        }
+
+
+def _counts(bounds: Sequence[str | None]) -> dict[str, int]:
+    names = [name or "none" for name in bounds]
+    return {name: names.count(name) for name in ["none", *(n for n in LIMIT_NAMES if n)]}
+
+
+def impact(records: Sequence[Mapping[str, Any]], candidate: Setting) -> Impact:
+    """Every record's request recomputed under `candidate` (its view, the plan's policy)."""
+    members, before, logged_bounds = members_from_records(records)
+    keep = list(range(members.size))
+    refused = 0
+    while True:
+        chosen = members if len(keep) == members.size else members.rows(keep)
+        try:
+            d = decide(chosen, candidate.view, candidate.policy, lambda n: [""] * n, batch_field)
+            break
+        except MemberErrors as impossible:
+            # A loss bound the candidate's line cannot meet at all: counted, left out of the moves.
+            gone = {keep[issue.index] for issue in impossible.issues}
+            refused += len(gone)
+            keep = [i for i in keep if i not in gone]
+    kept_before = before[keep]
+    after_bounds = [LIMIT_NAMES[c] for c in d.limited.tolist()]
+    return Impact(
+        members=members.size,
+        change=d.risky_fraction - kept_before,
+        before=kept_before,
+        after=d.risky_fraction,
+        member_ids=list(d.member_ids),
+        limited_before=_counts([logged_bounds[i] for i in keep]),
+        limited_after=_counts(after_bounds),
+        refused=refused,
+    )
