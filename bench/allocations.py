@@ -8,7 +8,8 @@ fresh PostgreSQL database), seeds an invented plan, mix and keys over HTTP, then
 1. Single allocations at 16 concurrent connections with wrk (Debian package `wrk`) for a fixed
    time, next to wrk on GET /livez (a trivial endpoint) as the floor. Targets: >= 2,500 req/s and
    p99 <= 15 ms. Requests carry no Idempotency-Key; a second run with a fresh key per request is
-   reported beside it.
+   reported beside it. The rate limiter and the JSON access log are on (a limit too high to
+   refuse anything; the log goes to a file).
 2. Batch: one POST .../allocations/batch with N members (default 300,000, the batch limit), end
    to end over loopback (request sent, every member computed and logged, answer received).
    Floor, same run: orjson parsing of the same request body plus a raw bulk insert (executemany /
@@ -81,6 +82,11 @@ class Server:
         env = os.environ | {
             "MIXLINE_DATABASE_URL": database_url,
             "MIXLINE_BOOTSTRAP_OPERATOR_KEY": OPERATOR,
+            # The rate limiter and the access log run as in production: every request spends a
+            # token (from a bucket too large to refuse any) and writes its line to a file.
+            "MIXLINE_RATE_LIMIT_PER_SECOND": "1000000",
+            "MIXLINE_RATE_LIMIT_BURST": "1000000",
+            "MIXLINE_ACCESS_LOG": str(workdir / f"access-{self.port}.jsonl"),
         }
         self.log = open(workdir / f"server-{self.port}.log", "w")
         self.proc = subprocess.Popen(

@@ -6,10 +6,30 @@ from typing import Literal
 
 from pydantic import Field, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
+from sqlalchemy.engine import make_url
 
-# Secrets that must never guard a production deployment.
+# Secrets that must never guard a production deployment, whole or as a part: an example value
+# copied from a manifest ("replace-with-...", "CHANGE_ME") reads as long and random enough.
 PLACEHOLDER_SECRETS = frozenset({"", "changeme", "change-me", "secret", "operator", "demo", "test"})
+PLACEHOLDER_WORDS = ("replace", "change", "example", "placeholder", "secret", "password", "dummy", "sample")
 MIN_PRODUCTION_SECRET_LENGTH = 32
+# A random secret of 32 characters has far more; "aaaa...a" or "1234...12" has fewer.
+MIN_DISTINCT_CHARACTERS = 8
+
+
+def secret_weakness(secret: str, *, min_length: int = MIN_PRODUCTION_SECRET_LENGTH) -> str | None:
+    """Why ``secret`` may not guard production, or None if it may."""
+    lowered = secret.lower()
+    if lowered in PLACEHOLDER_SECRETS:
+        return "is a placeholder"
+    found = next((w for w in PLACEHOLDER_WORDS if w in lowered.replace("_", "").replace("-", "")), None)
+    if found is not None:
+        return f"looks like a placeholder (contains {found!r})"
+    if len(secret) < min_length:
+        return f"is shorter than {min_length} characters"
+    if len(set(secret)) < MIN_DISTINCT_CHARACTERS:
+        return f"has fewer than {MIN_DISTINCT_CHARACTERS} distinct characters"
+    return None
 
 
 class Settings(BaseSettings):
@@ -24,12 +44,32 @@ class Settings(BaseSettings):
     max_body_bytes: int = Field(default=128 * 1024 * 1024, ge=1024)
     # How long a stored Idempotency-Key answer is replayed, in hours.
     idempotency_retention_hours: int = Field(default=24, ge=1)
+    # How long a reservation of an Idempotency-Key holds without an answer: a process that
+    # crashed mid-request holds the key no longer than this. Longer than the slowest request
+    # (a 300,000-member batch takes seconds); an answer that comes after its lease ran out and
+    # another request took the key is refused, never logged twice.
+    idempotency_lease_seconds: int = Field(default=60, ge=1)
     # Largest condition number a published covariance may have.
     max_condition_number: float = Field(default=1e12, gt=1)
     # Largest number of assets in one risky mix.
     max_assets: int = Field(default=2000, ge=1)
     # Largest number of frontier points one request may ask for.
     max_frontier_points: int = Field(default=500, ge=2)
+    # Requests per second per API key (token bucket, per process), and the bucket's size. The
+    # default guards against a runaway client, not a quota: one portal key may carry a plan's
+    # whole enrolment traffic (thousands a second); set it to the peak a key should reach.
+    rate_limit_per_second: float = Field(default=5000.0, gt=0)
+    rate_limit_burst: int = Field(default=10000, ge=1)
+    # Failed authentications per second per client address (per process), and the bucket's size.
+    auth_failure_limit_per_second: float = Field(default=5.0, gt=0)
+    auth_failure_burst: int = Field(default=20, ge=1)
+    # How long a process trusts what it read about a key (revocation, expiry), in seconds.
+    key_cache_seconds: float = Field(default=2.0, ge=0, le=5)
+    # Ed25519 private key (PEM, PKCS#8) that signs audit heads; unset: an ephemeral key
+    # (development only).
+    signing_key_file: str | None = None
+    # The JSON access log: "stdout", "stderr", "off", or a file path (appended to).
+    access_log: str = "stdout"
     # Database connections one process may hold: db_pool_size kept open, up to db_max_overflow
     # more under load (the log writer's own connection included). Replicas x (size + overflow)
     # must stay below the server's max_connections; deploy/kubernetes/deployment.yaml shows the sum.
@@ -45,13 +85,19 @@ class Settings(BaseSettings):
 
     @model_validator(mode="after")
     def _refuse_placeholder_secrets(self) -> Settings:
-        if self.environment == "production":
-            key = self.bootstrap_operator_key
-            if key is not None and (
-                key.lower() in PLACEHOLDER_SECRETS or len(key) < MIN_PRODUCTION_SECRET_LENGTH
-            ):
-                raise ValueError(
-                    "MIXLINE_BOOTSTRAP_OPERATOR_KEY is a placeholder or shorter than "
-                    f"{MIN_PRODUCTION_SECRET_LENGTH} characters; refusing to start in production"
-                )
+        if self.environment != "production":
+            return self
+        key = self.bootstrap_operator_key
+        if key is not None:
+            weakness = secret_weakness(key)
+            if weakness is not None:
+                raise ValueError(f"MIXLINE_BOOTSTRAP_OPERATOR_KEY {weakness}; refusing to start in production")
+        try:
+            password = make_url(self.database_url).password
+        except Exception:
+            password = None
+        if password is not None:
+            weakness = secret_weakness(str(password), min_length=1)
+            if weakness is not None:
+                raise ValueError(f"the password in MIXLINE_DATABASE_URL {weakness}; refusing to start in production")
         return self

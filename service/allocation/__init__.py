@@ -9,6 +9,9 @@ from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
 from .engine import Allocations, Setting, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
 from .estimation import estimate_mix, parse_dates
+from .identifiers import AllocationIds
+from .impact import Impact, impact
+from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
 from .lifecycle import (
     RESERVED_VERSION_NAMES,
     Activation,
@@ -21,9 +24,6 @@ from .lifecycle import (
     require_in_force,
     state_of,
 )
-from .identifiers import AllocationIds
-from .impact import Impact, impact
-from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
 from .line import AllocationLine
 from .members import MEMBER_ID_PATTERN, Members, read_members
 from .mixes import (

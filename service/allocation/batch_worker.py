@@ -100,10 +100,13 @@ def serve_batches(conn: Connection) -> None:
             continue
         try:
             d = prepared.decisions
+            answers: list[str] = []
             for start in range(0, prepared.size, STREAM_CHUNK):
                 rows = slice(start, start + STREAM_CHUNK)
                 conn.send(("rows", list(d.allocation_ids[rows]), list(d.member_ids[rows]), prepared.records(rows)))
-            body = prepared.batch_body(STREAM_CHUNK)
+                # Each chunk's answers are written while the log writer inserts its records.
+                answers.append(",".join(prepared.answers(rows, inline_disclosures=False)))
+            body = prepared.batch_body(answers)
         except Exception as error:
             conn.send(("refused", Refusal.of(error)))
             continue

@@ -58,14 +58,11 @@ class Allocations:
     def answers(self, rows: slice = slice(None), *, inline_disclosures: bool) -> list[str]:
         return answer_texts(self.context, self.decisions.rows(rows), inline_disclosures=inline_disclosures)
 
-    def batch_body(self, chunk: int) -> bytes:
-        """A batch's answer: what all results share, then every member's result in order."""
-        parts = [batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))]
-        for start in range(0, self.size, chunk):
-            texts = self.answers(slice(start, start + chunk), inline_disclosures=False)
-            parts.append((("," if start else "") + ",".join(texts)).encode())
-        parts.append(b"]}")
-        return b"".join(parts)
+    def batch_body(self, results: Sequence[str]) -> bytes:
+        """A batch's answer: what all results share, then the results (`answers` of consecutive
+        row ranges, each joined by commas) in order."""
+        head = batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))
+        return head + ",".join(results).encode() + b"]}"
 
 
 def decide(

@@ -41,9 +41,9 @@ def _documented(body: str) -> dict[str, object]:
 # so they read the same things directly, through the same KeyRing, and declare them above.
 
 
-def _read(request: Request) -> tuple[AppState, Caller, str | None]:
+async def _read(request: Request) -> tuple[AppState, Caller, str | None]:
     state: AppState = request.app.state.mixline
-    caller = state.keys.caller(request.headers.get("authorization"), state.load_key)
+    caller = await state.caller(request.headers.get("authorization"))
     return state, caller, request.headers.get("idempotency-key")
 
 
@@ -52,7 +52,7 @@ def _read(request: Request) -> tuple[AppState, Caller, str | None]:
     responses=problems(400, *AUTHED, 409, 413), openapi_extra=_documented("AllocationIn"),
 )
 async def create_allocation(plan_id: str, request: Request) -> Response:
-    state, caller, key = _read(request)
+    state, caller, key = await _read(request)
     return await allocate_one(state, caller, plan_id, await request.body(), key)
 
 
@@ -61,7 +61,7 @@ async def create_allocation(plan_id: str, request: Request) -> Response:
     responses=problems(400, *AUTHED, 409, 413), openapi_extra=_documented("BatchIn"),
 )
 async def create_allocation_batch(plan_id: str, request: Request) -> Response:
-    state, caller, key = _read(request)
+    state, caller, key = await _read(request)
     return await allocate_batch(state, caller, plan_id, await request.body(), key)
 
 

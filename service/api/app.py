@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import gc
 import json
+import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from importlib.resources import files
@@ -11,6 +12,7 @@ from typing import Any
 
 from fastapi import FastAPI
 from pydantic.json_schema import models_json_schema
+from sqlalchemy.exc import SQLAlchemyError
 from starlette.responses import Response
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -22,10 +24,12 @@ from . import allocations, audit, errors, estimating, impact, mixes, operations,
 from .auth import BOOTSTRAP_KEY_ID
 from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
+from .gateway import Gateway, csv_routes
 from .metrics import Metrics, MetricsMiddleware
 from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
 from .state import AppState
 
+log = logging.getLogger("mixline.api")
 # Package data (pyproject's package-data), so an installed package, the image included, has them.
 EXAMPLES = files("service.api") / "openapi_examples"
 
@@ -87,10 +91,15 @@ class BodyLimit:
 
 
 def bootstrap(state: AppState) -> None:
+    """Record the bootstrap operator key in the database. The key works without this row (auth.py
+    knows it from the settings), so a database that is down at start-up delays only the row."""
     key = state.settings.bootstrap_operator_key
     if key:
-        with state.db.writing() as s:
-            upsert_key(s, key_id=BOOTSTRAP_KEY_ID, plan_id=None, role="operator", secret_hash=secret_hash(key))
+        try:
+            with state.db.writing() as s:
+                upsert_key(s, key_id=BOOTSTRAP_KEY_ID, plan_id=None, role="operator", secret_hash=secret_hash(key))
+        except SQLAlchemyError as error:
+            log.warning("could not record the bootstrap operator key: %s", str(error).splitlines()[0][:200])
 
 
 def create_app(settings: Settings | None = None, database: Database | None = None, *, migrate: bool = True) -> FastAPI:
@@ -106,6 +115,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         if migrate:
             db.upgrade()
+        state.access_log.start()
         db.start()
         bootstrap(state)
         # Start-up objects (modules, routes, schemas) never die: keeping them out of the
@@ -120,6 +130,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
             state.mixes.close()
             if database is None:
                 db.close()
+            state.access_log.close()
 
     app = FastAPI(
         title="mixline",
@@ -136,10 +147,15 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
-    for module in (allocations, plans, estimating, mixes, impact, audit, operations):
-        app.include_router(module.router)
+    routers = [module.router for module in (allocations, plans, estimating, mixes, impact, audit, operations)]
+    for router in routers:
+        app.include_router(router)
+    app.include_router(audit.keys_router)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
+    # The routers' own routes: the application keeps included routers as branches, not routes.
+    csv_paths = csv_routes(route for router in routers for route in router.routes)
+    app.add_middleware(Gateway, log=state.access_log, csv_paths=csv_paths)
     install_openapi(app)
     install_docs(app)
     return app

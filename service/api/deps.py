@@ -22,14 +22,15 @@ StateDep = Annotated[AppState, Depends(get_state)]
 
 
 # Async so that FastAPI does not hop to a worker thread for them on every request; a key is read
-# from the database only on its first use in this process.
+# from the database on its first use in this process and every few seconds after (auth.py), in a
+# worker thread (AppState.caller).
 async def current_caller(
     request: Request,
     state: StateDep,
     _credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
 ) -> Caller:
     # The raw header is read again so that a malformed scheme gets our 401, not HTTPBearer's 403.
-    return state.keys.caller(request.headers.get("authorization"), state.load_key)
+    return await state.caller(request.headers.get("authorization"))
 
 
 CallerDep = Annotated[Caller, Depends(current_caller)]

@@ -1,40 +1,67 @@
 """RFC 9457 problem details: the one error shape every 4xx/5xx of mixline has.
 
-    ProblemError                  root; carries status, title, detail and optional field errors
-    ├── Unauthorized        401   no or wrong key
-    ├── Forbidden           403   right key, wrong role
-    ├── NotFound            404   absent, or another plan's (never 403 across plans)
-    ├── ConflictError       409   version with other content; same idempotency key in flight
-    ├── PayloadTooLarge     413   batch or body over the configured limit
-    ├── Unprocessable       422   well-formed but unanswerable input
-    └── NotReady            503   readiness failed
+    ProblemError                   root; carries status, title, detail and optional field errors
+    ├── Unauthorized         401   no, wrong, expired or revoked key
+    ├── Forbidden            403   right key, wrong role
+    ├── NotFound             404   absent, or another plan's (never 403 across plans)
+    ├── ConflictError        409   version with other content; same idempotency key in flight
+    ├── PayloadTooLarge      413   batch or body over the configured limit
+    ├── UnsupportedMediaType 415   a body that is not JSON (or CSV where a route takes it)
+    ├── Unprocessable        422   well-formed but unanswerable input
+    ├── TooManyRequests      429   a key's rate limit, or too many failed authentications
+    ├── DatabaseUnavailable  503   the database cannot be reached (a route that needs it)
+    └── NotReady             503   readiness failed
 
-Domain errors from below become problems here: a LifecycleConflict (a version not in force, a
-retired version activated, the only version in force retired) 409 with ``active_version``;
-any other AllocationError and numerics' InputError 422; request
-validation errors become 422 with one entry per field. No handler ever echoes the offending input
-back, so a NaN or a megabyte of garbage can never break the error response itself.
+One problem type per kind of error: every 422 is urn:mixline:problem:validation, whether the
+schema, the allocation rules or the numerics refused the input; every 404 is
+urn:mixline:problem:not-found, whether a route or a record is missing. Domain errors from below
+become problems here: a LifecycleConflict (a version not in force, a retired version activated,
+the only version in force retired) 409 with ``active_version``; any other AllocationError and
+numerics' InputError 422; request validation errors become 422
+with one entry per field; a database that cannot be reached becomes 503 with Retry-After. No
+handler ever echoes the offending input back, so a NaN or a megabyte of garbage can never break
+the error response itself. Every problem body names the request's `request_id`, the id the
+access log and the incident log carry.
 """
 
 from __future__ import annotations
 
 import logging
+import math
 from collections.abc import Sequence
 from typing import Any
 
 import orjson
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
+from sqlalchemy import exc as database_errors
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
 from service.allocation import AllocationError, LifecycleConflict, MemberErrors
 from service.allocation.requests import TooManyMembers
 from service.numerics import InputError
+from service.store import IdempotencyLeaseLost
+
+from .request_context import current_request
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 FIELD_MARK = "\x1f"  # the same mark as schemas.FIELD_MARK (errors must not import schemas)
 log = logging.getLogger("mixline.api")
+# How long a client should wait before retrying while the database cannot be reached.
+DATABASE_RETRY_AFTER_SECONDS = 2
+
+# What the identifier patterns of schemas.py allow, in words: a message never shows a regex.
+# tests/api/test_errors.py checks that every pattern in the OpenAPI document is described here.
+PATTERN_WORDS = {
+    r"^[A-Za-z0-9][A-Za-z0-9._\-]{0,63}$":
+        "1 to 64 letters, digits, '.', '_' or '-', starting with a letter or digit",
+    r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,31}$":
+        "1 to 32 letters, digits, '.', '_' or '-', starting with a letter or digit",
+    r"^[!#-\[\]-~]{1,128}$":
+        "1 to 128 printable ASCII characters without space, double quote or backslash",
+    r"^[A-Z]{3}$": "three capital letters (an ISO 4217 currency code such as USD)",
+}
 
 
 def problem_type(slug: str) -> str:
@@ -79,12 +106,49 @@ class PayloadTooLarge(ProblemError):
     status, title, slug = 413, "Payload too large", "payload-too-large"
 
 
+class UnsupportedMediaType(ProblemError):
+    status, title, slug = 415, "Unsupported media type", "unsupported-media-type"
+
+
 class Unprocessable(ProblemError):
-    status, title, slug = 422, "Unprocessable request", "unprocessable"
+    status, title, slug = 422, "Invalid request", "validation"
+
+
+class TooManyRequests(ProblemError):
+    status, title, slug = 429, "Too many requests", "rate-limited"
+
+    def __init__(self, detail: str, *, retry_after: float) -> None:
+        super().__init__(detail, headers={"Retry-After": str(max(1, math.ceil(retry_after)))})
+
+
+class DatabaseUnavailable(ProblemError):
+    status, title, slug = 503, "Database unavailable", "database-unavailable"
+
+    def __init__(self, detail: str = "the database cannot be reached; retry shortly") -> None:
+        super().__init__(detail, headers={"Retry-After": str(DATABASE_RETRY_AFTER_SECONDS)})
 
 
 class NotReady(ProblemError):
     status, title, slug = 503, "Not ready", "not-ready"
+
+    def __init__(self, detail: str) -> None:
+        super().__init__(detail, headers={"Retry-After": str(DATABASE_RETRY_AFTER_SECONDS)})
+
+
+def database_unreachable(exc: BaseException) -> bool:
+    """True for the errors of a database that cannot be reached (or of a connection lost to
+    it), as opposed to a bad statement: those are the service's own failures (500)."""
+    if isinstance(exc, database_errors.DBAPIError) and exc.connection_invalidated:
+        return True
+    if type(exc).__name__ == "OperationalError" and type(exc).__module__.split(".")[0] in ("psycopg", "sqlite3"):
+        return True  # a driver's own error that reached us unwrapped
+    return isinstance(
+        exc,
+        database_errors.OperationalError
+        | database_errors.InterfaceError
+        | database_errors.DisconnectionError
+        | database_errors.TimeoutError,
+    )
 
 
 def problem_response(
@@ -103,6 +167,9 @@ def problem_response(
         body.update(extra)
     if instance:
         body["instance"] = instance
+    info = current_request.get()
+    if info is not None:
+        body["request_id"] = info.request_id
     if errors:
         body["errors"] = list(errors)
     return Response(orjson.dumps(body), status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=headers)
@@ -145,6 +212,9 @@ def validation_errors(exc: RequestValidationError) -> list[dict[str, str]]:
             errors.append(field_error("body", f"invalid JSON {where}".strip()))
             continue
         field = _location(e.get("loc", ()))
+        if e.get("type") == "string_pattern_mismatch":
+            pattern = str((e.get("ctx") or {}).get("pattern", ""))
+            reason = f"must be {PATTERN_WORDS.get(pattern, 'in the form the API document gives')}"
         if FIELD_MARK in reason:
             sub, reason = reason.split(FIELD_MARK, 1)
             field = sub if field == "body" else f"{field}.{sub}"
@@ -165,6 +235,16 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
             409, "Conflict", f"{exc.field}: {exc.reason}", slug=slug, errors=[field_error(exc.field, exc.reason)],
             instance=path, extra={"active_version": exc.active_version},
         )
+    if isinstance(exc, IdempotencyLeaseLost):
+        return response_for(
+            ConflictError(
+                "this request outlived its Idempotency-Key lease and another request with the key "
+                "was answered meanwhile; nothing of this one was logged. Retry with the same key for "
+                "that answer",
+                headers={"Retry-After": "1"},
+            ),
+            path, method,
+        )
     if isinstance(exc, MemberErrors):
         listed = [field_error(field, reason) for field, reason in exc.listed]
         opening = f"{listed[0]['field']}: {listed[0]['reason']}"
@@ -184,7 +264,7 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
         )
     if isinstance(exc, AllocationError | InputError):
         return problem_response(
-            422, "Unprocessable request", f"{exc.field}: {exc.reason}", slug="unprocessable",
+            Unprocessable.status, Unprocessable.title, f"{exc.field}: {exc.reason}", slug=Unprocessable.slug,
             errors=[field_error(exc.field, exc.reason)], instance=path,
         )
     if isinstance(exc, RequestValidationError):
@@ -192,20 +272,42 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
         first = found[0] if found else field_error("body", "invalid")
         more = f" (and {len(found) - 1} more)" if len(found) > 1 else ""
         return problem_response(
-            422, "Invalid request", f"{first['field']}: {first['reason']}{more}", slug="validation",
-            errors=found, instance=path,
+            Unprocessable.status, Unprocessable.title, f"{first['field']}: {first['reason']}{more}",
+            slug=Unprocessable.slug, errors=found, instance=path,
         )
     if isinstance(exc, StarletteHTTPException):
-        titles = {404: "Not found", 405: "Method not allowed", 413: "Payload too large"}
+        # The same types as ours: a missing route and a missing record are one kind to a client.
+        kinds = {
+            404: (NotFound.title, NotFound.slug),
+            405: ("Method not allowed", "method-not-allowed"),
+            413: (PayloadTooLarge.title, PayloadTooLarge.slug),
+        }
+        title, slug = kinds.get(exc.status_code, ("HTTP error", f"http-{exc.status_code}"))
         return problem_response(
-            exc.status_code, titles.get(exc.status_code, "HTTP error"), str(exc.detail),
-            slug=f"http-{exc.status_code}", headers=getattr(exc, "headers", None), instance=path,
+            exc.status_code, title, str(exc.detail), slug=slug, headers=getattr(exc, "headers", None),
+            instance=path,
         )
-    log.error("unhandled error on %s %s", method, path, exc_info=exc)
+    info = current_request.get()
+    if database_unreachable(exc):
+        if info is not None and info.log is not None:
+            info.log.outage(_first_line(exc))
+        else:
+            log.warning("database unreachable: %s", _first_line(exc))
+        return response_for(DatabaseUnavailable(), path, method)
+    if info is not None and info.log is not None:
+        info.log.incident(exc, method=method, route=path, request_id=info.request_id)
+    else:
+        log.error("unhandled error on %s %s", method, path, exc_info=exc)
     return problem_response(
-        500, "Internal error", "the service failed to answer; the failure is logged",
+        500, "Internal error",
+        "the service failed to answer; the failure is logged under this request_id",
         slug="internal", instance=path,
     )
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(getattr(exc, "orig", None) or exc).strip()
+    return text.splitlines()[0][:200] if text else type(exc).__name__
 
 
 def install(app: FastAPI) -> None:

@@ -16,16 +16,12 @@ from service.allocation import estimate_mix
 
 from .bodies import parse_body
 from .deps import CallerDep, StateDep
-from .errors import ProblemError, Unprocessable, field_error
+from .errors import Unprocessable, UnsupportedMediaType, field_error
 from .history_csv import read_history_csv
 from .responses import AUTHED, json_response, problems
 from .schemas import EstimateIn, EstimateOut
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
-
-
-class UnsupportedMediaType(ProblemError):
-    status, title, slug = 415, "Unsupported media type", "unsupported-media-type"
 
 
 def _given_returns(text: str) -> str | dict[str, float]:

@@ -4,12 +4,15 @@
   request body, so "the same request" means the same bytes.
 - First use: the request reserves the key, and its answer is stored with its log rows in one
   transaction (the writer completes the reservation), so a retry gets exactly what was logged.
-- Same key, same body, answer stored: the first answer again, nothing new logged.
+- Same key, same body, answer stored: the first answer again (`Mixline-Replay: true`), nothing
+  new logged.
 - Same key, same body, first request still running: 409 with Retry-After.
 - Same key, another body: 422.
 - A request that fails before anything is logged gives its reservation up, so a corrected
-  retry is answered normally. Reservations expire after MIXLINE_IDEMPOTENCY_RETENTION_HOURS
-  (24 by default) and are then replaced.
+  retry is answered normally. A reservation without an answer is a lease of
+  MIXLINE_IDEMPOTENCY_LEASE_SECONDS (60 by default): a process that crashed mid-request holds
+  the key no longer, and the retry after it is answered as a new request. Stored answers are
+  replayed for MIXLINE_IDEMPOTENCY_RETENTION_HOURS (24 by default), then replaced.
 """
 
 from __future__ import annotations
@@ -27,6 +30,9 @@ from service.store import IdempotencyCompletion, KeyRelease, KeyReservation
 from .auth import Caller
 from .errors import ConflictError, ProblemError, Unprocessable
 from .state import AppState
+
+# Marks an answer that is a replay of the first one (our name; the capability is the draft's).
+REPLAY_HEADER = "Mixline-Replay"
 
 HEADER_PARAMETER = {
     "name": "Idempotency-Key",
@@ -48,9 +54,14 @@ class Claim:
     plan_id: str
     key_id: str
     key: str
+    reserved_at: int  # unix seconds: names this owner's reservation
+    retention_seconds: int
 
     def completion(self, status_code: int, response: bytes) -> IdempotencyCompletion:
-        return IdempotencyCompletion(self.plan_id, self.key_id, self.key, status_code, response.decode())
+        return IdempotencyCompletion(
+            self.plan_id, self.key_id, self.key, status_code, response.decode(),
+            reserved_at=self.reserved_at, expires_at=int(time.time()) + self.retention_seconds,
+        )
 
 
 def parse_key(value: str | None) -> str | None:
@@ -73,10 +84,13 @@ async def claim(state: AppState, caller: Caller, plan_id: str, header: str | Non
     retention = state.settings.idempotency_retention_hours * 3600
 
     # The log writer runs the reservation in its next group transaction (see store.idempotency).
-    operation = KeyReservation(plan_id, caller.key_id, key, fingerprint, int(time.time()), retention)
+    now = int(time.time())
+    operation = KeyReservation(
+        plan_id, caller.key_id, key, fingerprint, now, state.settings.idempotency_lease_seconds
+    )
     standing = await asyncio.wrap_future(state.db.writer.submit_key_operation(operation))
     if standing is None:
-        return Claim(plan_id, caller.key_id, key)
+        return Claim(plan_id, caller.key_id, key, now, retention)
     if standing.fingerprint != fingerprint:
         raise Unprocessable(
             "Idempotency-Key was already used with another request body; use a new key for a new request",
@@ -88,9 +102,9 @@ async def claim(state: AppState, caller: Caller, plan_id: str, header: str | Non
             headers={"Retry-After": "1"},
         )
     return Response(standing.response.encode(), status_code=standing.status_code,
-                    media_type="application/json", headers={"Idempotent-Replayed": "true"})
+                    media_type="application/json", headers={REPLAY_HEADER: "true"})
 
 
 async def give_up(state: AppState, owned: Claim) -> None:
-    release = KeyRelease(owned.plan_id, owned.key_id, owned.key)
+    release = KeyRelease(owned.plan_id, owned.key_id, owned.key, owned.reserved_at)
     await asyncio.wrap_future(state.db.writer.submit_key_operation(release))

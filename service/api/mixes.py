@@ -16,9 +16,9 @@ from service.store import MixLifecycle, get_allocation
 from .allocating import rendered
 from .bodies import parse_body, request_body_schema
 from .charts import frontier_svg
-from .impact import impact_document
 from .deps import CallerDep, StateDep
 from .errors import NotFound, Unprocessable
+from .impact import impact_document
 from .negotiation import choose
 from .pictures import frontier_chart, frontier_csv, member_split
 from .responses import AUTHED, json_response, problems

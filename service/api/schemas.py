@@ -103,6 +103,9 @@ class PlanOut(BaseModel):
 
 class KeyIn(Strict):
     role: Literal["committee", "portal"]
+    expires_in_days: Annotated[int, Field(ge=1, le=3660)] | None = Field(
+        default=None, description="the key stops working this many days after issue; unset: it never expires"
+    )
 
 
 class KeyOut(BaseModel):
@@ -110,6 +113,22 @@ class KeyOut(BaseModel):
     plan_id: str
     role: str
     secret: str
+    created_at: str
+    expires_at: str | None
+
+
+class KeyInfoOut(BaseModel):
+    key_id: str
+    plan_id: str
+    role: str
+    created_at: str
+    expires_at: str | None
+    revoked_at: str | None
+
+
+class KeyListOut(BaseModel):
+    plan_id: str
+    keys: list[KeyInfoOut]
 
 
 # ---- risky mixes ----------------------------------------------------------------------------
@@ -437,6 +456,23 @@ class AuditOut(BaseModel):
     checked: int
     head_hash: str
     first_bad: BadRowOut | None
+
+
+class SignedHeadOut(BaseModel):
+    plan_id: str
+    seq: int
+    hash: str
+    signed_at: str
+    key_id: str
+    signature: str
+
+
+class SigningKeyOut(BaseModel):
+    algorithm: Literal["Ed25519"]
+    key_id: str
+    public_key: str
+    public_key_pem: str
+    ephemeral: bool
 
 
 class HealthOut(BaseModel):

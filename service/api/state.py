@@ -4,6 +4,8 @@ Plans (their name, currency and policy), keys and published mixes never change o
 replica may keep them for its lifetime. The active version can change on any replica: pages read
 it live, and allocations use what this process read at most ``active_version_ttl_seconds`` ago
 (an activation here is seen here at once), so every replica follows an activation within that.
+Keys can be revoked or expire, so what a replica knows of one is re-read after a few seconds
+(auth.py).
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 from sqlalchemy.exc import SQLAlchemyError
+from starlette.concurrency import run_in_threadpool
 
 from service.allocation import (
     AllocationError,
@@ -44,6 +47,7 @@ from service.settings import Settings
 from service.store import (
     Conflict,
     Database,
+    HeadSigner,
     KeyRecord,
     MixLifecycle,
     PlanRecord,
@@ -59,11 +63,13 @@ from service.store import (
     record_retirement,
 )
 
-from .auth import KeyRing
+from .access_log import AccessLog
+from .auth import Caller, KeyRing
 from .batch_process import BatchProcess
 from .deciding import SinglesTogether
 from .errors import ConflictError, NotFound, PayloadTooLarge
 from .metrics import Metrics
+from .rate_limits import TokenBuckets
 from .schemas import MixIn
 
 
@@ -376,7 +382,29 @@ class AppState:
         self.settings = settings
         self.metrics = metrics
         self.db = database
-        self.keys = KeyRing()
+        self.keys = KeyRing(
+            cache_seconds=settings.key_cache_seconds,
+            requests=TokenBuckets(settings.rate_limit_per_second, settings.rate_limit_burst),
+            failures=TokenBuckets(settings.auth_failure_limit_per_second, settings.auth_failure_burst),
+            bootstrap_secret=settings.bootstrap_operator_key,
+        )
+        self.access_log = AccessLog(settings.access_log)
+        if settings.signing_key_file:
+            self.signer = HeadSigner.from_file(settings.signing_key_file)
+        elif settings.environment == "production":
+            # Checked here, not in Settings: `mixline migrate` and `audit verify` sign nothing.
+            raise ValueError(
+                "MIXLINE_SIGNING_KEY_FILE is unset: production signs audit heads with a key that "
+                "outlives the process and is the same on every replica; refusing to serve"
+            )
+        else:
+            # Heads signed by a key that dies with the process (and differs per replica) cannot
+            # be checked later: development only.
+            self.signer = HeadSigner.generated()
+            log.warning(
+                "MIXLINE_SIGNING_KEY_FILE unset: audit heads are signed with an ephemeral key "
+                "(id %s) that lasts only as long as this process (development only)", self.signer.key_id,
+            )
         self.mixes = MixCatalog(database, settings, metrics)
         self.singles = SinglesTogether()
         self.batches = BatchProcess()
@@ -384,6 +412,15 @@ class AppState:
         # Set once the process begins to stop (SIGTERM, or the lifespan's shutdown): /readyz then
         # answers 503, so a balancer still holding a connection to it sends no new work.
         self.shutting_down = False
+
+    async def caller(self, authorization: str | None) -> Caller:
+        """The caller a bearer names. A key read for the first time, or re-read once its cache time
+        is over (auth.py), is read in a worker thread: a database that hangs must not stall the
+        event loop (and /livez with it)."""
+        due = self.keys.due(authorization)
+        if due is not None:
+            self.keys.store(due, await run_in_threadpool(self.load_key, due))
+        return self.keys.caller(authorization, self.load_key)
 
     def load_key(self, key_id: str) -> KeyRecord | None:
         with self.db.reading() as s:

@@ -27,6 +27,9 @@ FloatArray = npt.NDArray[np.float64]
 
 _CORRELATION_SYMMETRY_TOL = 1e-12
 _CORRELATION_DIAGONAL_TOL = 1e-12
+# Ordinary floating point puts 1.0000000000000002 (1 + one ulp) where 1 was meant: entries this
+# close outside [-1, 1] are rounding, not a claim, and are brought back to the bound.
+_CORRELATION_BOUND_TOL = 1e-12
 _COVARIANCE_SYMMETRY_RTOL = 1e-12
 _VOLATILITY_AGREEMENT_RTOL = 1e-9
 _PSD_RTOL = 1e-12
@@ -279,12 +282,12 @@ def build_inputs(codes: Sequence[str], expected_returns: Sequence[float], risk_f
         diag_gap = np.abs(np.diag(corr) - 1.0)
         if diag_gap.max() > _CORRELATION_DIAGONAL_TOL:
             i = int(np.argmax(diag_gap))
-            raise InputError(f"correlation[{i}][{i}]", f"diagonal entries must be 1, got {corr[i, i]:.12g}")
-        outside = np.argwhere(np.abs(corr) > 1.0)
+            raise InputError(f"correlation[{i}][{i}]", f"diagonal entries must be 1, got {float(corr[i, i])!r}")
+        outside = np.argwhere(np.abs(corr) > 1.0 + _CORRELATION_BOUND_TOL)
         if outside.size:
             i, j = (int(k) for k in outside[0])
-            raise InputError(f"correlation[{i}][{j}]", f"correlation must lie in [-1, 1], got {corr[i, j]:.12g}")
-        corr = 0.5 * (corr + corr.T)
+            raise InputError(f"correlation[{i}][{j}]", f"correlation must lie in [-1, 1], got {float(corr[i, j])!r}")
+        corr = np.clip(0.5 * (corr + corr.T), -1.0, 1.0)
         np.fill_diagonal(corr, 1.0)
         _check_spectrum(corr, "correlation", max_condition_number)
         cov = corr * np.outer(vols, vols)

@@ -7,7 +7,12 @@ PostgreSQL are both supported through the same calls.
 from service.store.chain import GENESIS_HASH, verify_chain
 from service.store.database import Database
 from service.store.errors import Conflict
-from service.store.idempotency import IdempotencyRecord, KeyRelease, KeyReservation
+from service.store.idempotency import (
+    IdempotencyLeaseLost,
+    IdempotencyRecord,
+    KeyRelease,
+    KeyReservation,
+)
 from service.store.key_secrets import secret_hash, secret_matches
 from service.store.records import (
     BadRow,
@@ -32,11 +37,20 @@ from service.store.repository import (
     insert_plan,
     latest_allocations,
     list_allocations,
+    list_keys,
     list_lifecycle,
     lock_lifecycle,
     record_activation,
     record_retirement,
+    revoke_key,
     upsert_key,
+)
+from service.store.signed_heads import (
+    HeadSigner,
+    SignedHead,
+    check_against_head,
+    current_head,
+    load_public_key,
 )
 from service.store.writer import ChainWriter
 
@@ -47,16 +61,21 @@ __all__ = [
     "ChainWriter",
     "Conflict",
     "Database",
+    "HeadSigner",
     "IdempotencyCompletion",
+    "IdempotencyLeaseLost",
     "IdempotencyRecord",
+    "KeyRecord",
     "KeyRelease",
     "KeyReservation",
-    "KeyRecord",
     "LogBatch",
     "LogStream",
     "MixLifecycle",
     "MixRecord",
     "PlanRecord",
+    "SignedHead",
+    "check_against_head",
+    "current_head",
     "get_allocation",
     "get_frontier",
     "get_key",
@@ -68,6 +87,9 @@ __all__ = [
     "insert_plan",
     "latest_allocations",
     "list_allocations",
+    "list_keys",
+    "load_public_key",
+    "revoke_key",
     "list_lifecycle",
     "lock_lifecycle",
     "record_activation",

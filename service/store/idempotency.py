@@ -6,11 +6,22 @@ second writer would fight the log writer for the database lock (and wait in SQLi
 handler for tens of milliseconds), and in the writer's transaction the reservation is one more
 statement of a group commit. The insert does nothing on conflict, so of many simultaneous
 requests exactly one owns the key; the others find it in flight or, once the owner's answer is
-committed with its log rows (IdempotencyCompletion), done. Expired reservations are replaced.
+committed with its log rows (IdempotencyCompletion), done.
+
+A reservation is a lease: an in-flight row expires ``lease_seconds`` after it was taken
+(the answer, once stored, is kept for the retention period instead). A process killed between
+reserving and answering therefore holds the key no longer than the lease, and the client's
+retry with the same key is then answered as a new request. Expired rows are replaced.
+
+The owner is named by the time it reserved (``reserved_at``, unix seconds): a key is only taken
+over once its lease (at least a second) ran out, so two owners never share that time. Storing
+an answer, or giving a key up, matches it; an answer whose lease was taken over meanwhile is
+refused (IdempotencyLeaseLost) and its transaction rolled back, so nothing is logged twice.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -18,6 +29,10 @@ from service.store.records import IdempotencyCompletion
 
 IN_FLIGHT = "in_flight"
 DONE = "done"
+
+
+class IdempotencyLeaseLost(Exception):
+    """The request outlived its reservation's lease and another request holds the key now."""
 
 
 @dataclass(frozen=True)
@@ -36,7 +51,7 @@ class KeyReservation:
     idempotency_key: str
     fingerprint: str
     now: int  # unix seconds
-    retention_seconds: int
+    lease_seconds: int
 
 
 @dataclass(frozen=True)
@@ -46,6 +61,7 @@ class KeyRelease:
     plan_id: str
     key_id: str
     idempotency_key: str
+    reserved_at: int  # the owner's reservation time (unix seconds)
 
 
 KeyOperation = KeyReservation | KeyRelease
@@ -61,17 +77,31 @@ _STANDING = (
     "SELECT fingerprint, state, status_code, response, expires_at FROM idempotency_keys WHERE "
     + _WHERE
 )
-_RELEASE = "DELETE FROM idempotency_keys WHERE " + _WHERE + " AND state = 'in_flight'"
+_OWNED = " AND state = 'in_flight' AND created_at = {p}"
+_RELEASE = "DELETE FROM idempotency_keys WHERE " + _WHERE + _OWNED
 _PURGE = "DELETE FROM idempotency_keys WHERE expires_at <= {p}"
 
 COMPLETE_SQL = (
-    "UPDATE idempotency_keys SET state = 'done', status_code = {p}, response = {p} "
-    "WHERE " + _WHERE + " AND state = 'in_flight'"
+    "UPDATE idempotency_keys SET state = 'done', status_code = {p}, response = {p}, "
+    "expires_at = {p} WHERE " + _WHERE + _OWNED
 )
 
 
-def completion_parameters(c: IdempotencyCompletion) -> tuple[int, str, str, str, str]:
-    return (c.status_code, c.response, c.plan_id, c.key_id, c.idempotency_key)
+def completion_parameters(c: IdempotencyCompletion) -> tuple[int, str, int, str, str, str, int]:
+    return (c.status_code, c.response, c.expires_at, c.plan_id, c.key_id, c.idempotency_key, c.reserved_at)
+
+
+def complete(cursor: Any, completions: Sequence[tuple[Any, ...]], placeholder: str) -> None:
+    """Store answers into their reservations; IdempotencyLeaseLost if one is no longer owned
+    (the caller's transaction must then roll back: its rows must not be logged)."""
+    statement = COMPLETE_SQL.format(p=placeholder)
+    for parameters in completions:
+        cursor.execute(statement, parameters)
+        if cursor.rowcount != 1:
+            raise IdempotencyLeaseLost(
+                f"Idempotency-Key {parameters[5]!r}: the reservation's lease ran out and another "
+                "request took the key"
+            )
 
 
 def run(cursor: Any, op: KeyOperation, placeholder: str) -> IdempotencyRecord | None:
@@ -81,12 +111,12 @@ def run(cursor: Any, op: KeyOperation, placeholder: str) -> IdempotencyRecord | 
     """
     key = (op.plan_id, op.key_id, op.idempotency_key)
     if isinstance(op, KeyRelease):
-        cursor.execute(_RELEASE.format(p=placeholder), key)
+        cursor.execute(_RELEASE.format(p=placeholder), (*key, op.reserved_at))
         return None
     cursor.execute(_DROP_EXPIRED.format(p=placeholder), (*key, op.now))
     cursor.execute(
         _INSERT.format(p=placeholder),
-        (*key, op.fingerprint, op.now, op.now + op.retention_seconds),
+        (*key, op.fingerprint, op.now, op.now + op.lease_seconds),
     )
     if cursor.rowcount == 1:
         return None

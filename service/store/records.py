@@ -27,6 +27,16 @@ class KeyRecord:
     role: str
     secret_hash: str
     created_at: datetime
+    expires_at: datetime | None = None
+    revoked_at: datetime | None = None
+
+    def unusable_at(self, now: datetime) -> str | None:
+        """Why the key may not be used at ``now`` ("revoked", "expired"), or None."""
+        if self.revoked_at is not None and self.revoked_at <= now:
+            return "revoked"
+        if self.expires_at is not None and self.expires_at <= now:
+            return "expired"
+        return None
 
 
 @dataclass(frozen=True)
@@ -64,6 +74,8 @@ class IdempotencyCompletion:
     idempotency_key: str
     status_code: int
     response: str
+    reserved_at: int  # the reservation this answer completes (unix seconds; see store.idempotency)
+    expires_at: int  # until when the answer is replayed (unix seconds)
 
 
 @dataclass(frozen=True)

@@ -90,8 +90,23 @@ def get_plan(s: Session, plan_id: str) -> PlanRecord | None:
 
 
 def insert_key(
-    s: Session, *, key_id: str, plan_id: str | None, role: str, secret_hash: str
-) -> None:
+    s: Session,
+    *,
+    key_id: str,
+    plan_id: str | None,
+    role: str,
+    secret_hash: str,
+    expires_at: datetime | None = None,
+    created_at: datetime | None = None,
+) -> KeyRecord:
+    record = KeyRecord(
+        key_id=key_id,
+        plan_id=plan_id,
+        role=role,
+        secret_hash=secret_hash,
+        created_at=created_at or utc_now(),
+        expires_at=expires_at,
+    )
     _insert_new(
         s,
         ApiKey,
@@ -101,9 +116,12 @@ def insert_key(
             plan_id=plan_id,
             role=role,
             secret_hash=secret_hash,
-            created_at=utc_now(),
+            created_at=record.created_at,
+            expires_at=expires_at,
+            revoked_at=None,
         ),
     )
+    return record
 
 
 def upsert_key(
@@ -124,17 +142,47 @@ def upsert_key(
     s.execute(stmt)
 
 
-def get_key(s: Session, key_id: str) -> KeyRecord | None:
-    row = s.execute(select(ApiKey.__table__).where(ApiKey.key_id == key_id)).one_or_none()
-    if row is None:
-        return None
+def _key_record(row: Any) -> KeyRecord:
     return KeyRecord(
         key_id=row.key_id,
         plan_id=row.plan_id,
         role=row.role,
         secret_hash=row.secret_hash,
         created_at=row.created_at,
+        expires_at=row.expires_at,
+        revoked_at=row.revoked_at,
     )
+
+
+def get_key(s: Session, key_id: str) -> KeyRecord | None:
+    row = s.execute(select(ApiKey.__table__).where(ApiKey.key_id == key_id)).one_or_none()
+    return None if row is None else _key_record(row)
+
+
+def list_keys(s: Session, plan_id: str) -> list[KeyRecord]:
+    """The plan's keys, oldest first (revoked and expired ones included)."""
+    rows = s.execute(
+        select(ApiKey.__table__)
+        .where(ApiKey.plan_id == plan_id)
+        .order_by(ApiKey.created_at, ApiKey.key_id)
+    )
+    return [_key_record(row) for row in rows]
+
+
+def revoke_key(s: Session, plan_id: str, key_id: str, *, now: datetime) -> KeyRecord | None:
+    """Revoke one of the plan's keys at ``now`` (a key revoked before keeps its first time).
+
+    None if the plan has no such key.
+    """
+    s.execute(
+        update(ApiKey)
+        .where(ApiKey.plan_id == plan_id, ApiKey.key_id == key_id, ApiKey.revoked_at.is_(None))
+        .values(revoked_at=now)
+    )
+    row = s.execute(
+        select(ApiKey.__table__).where(ApiKey.plan_id == plan_id, ApiKey.key_id == key_id)
+    ).one_or_none()
+    return None if row is None else _key_record(row)
 
 
 def insert_mix(

@@ -91,6 +91,7 @@ class Plan(Base):
 
 class ApiKey(Base):
     __tablename__ = "api_keys"
+    __table_args__ = (Index("ix_api_keys_plan_id", "plan_id"),)
 
     key_id: Mapped[str] = mapped_column(String(), primary_key=True)
     plan_id: Mapped[str | None] = mapped_column(
@@ -99,6 +100,8 @@ class ApiKey(Base):
     role: Mapped[str] = mapped_column(String())
     secret_hash: Mapped[str] = mapped_column(CHAR(64))
     created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utc_now)
+    expires_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    revoked_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
 
 
 class Mix(Base):

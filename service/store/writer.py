@@ -34,11 +34,11 @@ from sqlalchemy.exc import DBAPIError
 
 from service.store.chain import GENESIS_HASH, SEPARATOR
 from service.store.idempotency import (
-    COMPLETE_SQL,
     IdempotencyRecord,
     KeyOperation,
     KeyRelease,
     KeyReservation,
+    complete,
     completion_parameters,
     purge,
 )
@@ -155,7 +155,7 @@ class _Chains:
             self.heads[plan_id] = (seq, prev_hash)
 
 
-def _completions(jobs: Iterable[_Job]) -> list[tuple[int, str, str, str, str]]:
+def _completions(jobs: Iterable[_Job]) -> list[tuple[Any, ...]]:
     """Idempotency answers to store with these rows (a stream's arrives after its last row)."""
     found = []
     for job in jobs:
@@ -177,6 +177,8 @@ class ChainWriter:
     GATHER_GAP_SECONDS = 0.0003
     GATHER_MAX_SECONDS = 0.002
     GATHER_WRITE_SHARE = 0.5
+    # After a failed connect, jobs fail at once for this long before the next attempt.
+    RECONNECT_PAUSE_SECONDS = 0.5
 
     def __init__(self, engine: Engine, *, max_group_rows: int = 50_000) -> None:
         self._engine = engine
@@ -189,6 +191,10 @@ class ChainWriter:
         self._connection: Any = None  # a pooled DBAPI connection, owned by the writer thread
         self._checkpointer = WalCheckpointer(engine) if self._dialect == "sqlite" else None
         self._last_purge = 0.0
+        # While a stream is written, WAL checkpoints wait: copying pages back to the database
+        # file then would compete with the stream's own writes (one checkpoint follows it).
+        self._streaming = False
+        self._refused: tuple[float, Exception] | None = None  # (until when, the connect error)
         # Called on the writer thread after each group as (jobs, rows, seconds); the api layer
         # turns it into metrics, so this module needs no metrics library. Once per group, not per row.
         self.group_written: Callable[[int, int, float], None] | None = None
@@ -375,7 +381,7 @@ class ChainWriter:
     # Rows of other requests are written between a stream's transactions, each of at most this
     # many rows (a few milliseconds), so that they wait for at most one of them. PostgreSQL pays
     # an fsync per commit and lets other plans' requests commit meanwhile: larger pieces there.
-    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 256, "postgresql": 1024}
+    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 1024, "postgresql": 2048}
     STREAM_POLL_SECONDS = 0.002
 
     def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
@@ -385,6 +391,7 @@ class ChainWriter:
         assert isinstance(stream, LogStream)
         deferred: list[Any] = []
         stopping = False
+        self._streaming = True
         try:
             self._batch_state(stream, STAGED, None, opening=True)
             while True:
@@ -415,6 +422,10 @@ class ChainWriter:
             job.future.set_exception(error)
         else:
             job.future.set_result(None)
+        finally:
+            self._streaming = False
+            if self._checkpointer is not None:
+                self._checkpointer.committed(stream.size)
         for waiting in deferred:
             self._queue.put(waiting)  # later streams, and a stop, keep their turn
         return stopping and not deferred
@@ -466,7 +477,9 @@ class ChainWriter:
                     f"UPDATE allocation_batches SET state = {p} WHERE batch_id = {p}", (state, stream.batch_id)
                 )
             if completes is not None:
-                cursor.execute(COMPLETE_SQL.format(p=p), completion_parameters(completes))
+                # The lease check as for any answer: one whose reservation was taken over
+                # leaves the batch invisible.
+                complete(cursor, [completion_parameters(completes)], p)
             dbapi.commit()
         except BaseException:
             self._rollback(dbapi)
@@ -529,7 +542,24 @@ class ChainWriter:
 
     def _checkout(self) -> Any:
         if self._connection is None:
-            self._connection = self._engine.raw_connection()
+            driver_error = self._engine.dialect.loaded_dbapi.Error
+            refused = self._refused
+            if refused is not None and time.monotonic() < refused[0]:
+                # Connected and failed a moment ago: the jobs waiting now fail at once instead of
+                # each trying (and, with a server that does not answer, waiting out the timeout).
+                raise DBAPIError.instance(
+                    None, None, refused[1], driver_error, connection_invalidated=True
+                ) from refused[1]
+            try:
+                self._connection = self._engine.raw_connection()
+            except driver_error as error:
+                self._refused = (time.monotonic() + self.RECONNECT_PAUSE_SECONDS, error)
+                # The pool hands out the driver's own error here; callers tell an unreachable
+                # database by SQLAlchemy's classes, as everywhere else.
+                raise DBAPIError.instance(
+                    None, None, error, driver_error, connection_invalidated=True
+                ) from error
+            self._refused = None
             if self._dialect == "sqlite":
                 sqlite = self._connection.driver_connection
                 sqlite.execute(f"PRAGMA cache_size=-{_SQLITE_WRITER_CACHE_KIB}")
@@ -580,11 +610,9 @@ class ChainWriter:
             "SET last_seq = excluded.last_seq, last_hash = excluded.last_hash",
             [(plan_id, seq, last) for plan_id, (seq, last) in chains.heads.items()],
         )
-        completions = _completions(jobs)
-        if completions:
-            dbapi.executemany(COMPLETE_SQL.format(p="?"), completions)
+        complete(dbapi.cursor(), _completions(jobs), "?")
         dbapi.commit()
-        if self._checkpointer is not None:
+        if self._checkpointer is not None and not self._streaming:
             self._checkpointer.committed(sum(job.size for job in jobs))
 
     def _write_postgresql(self, dbapi: Any, jobs: list[_Job]) -> None:
@@ -609,13 +637,13 @@ class ChainWriter:
                     for row in chains.rows(jobs):
                         copy.write_row(row)
                 cursor.executemany(move_heads, _head_rows(chains))
-                completions = _completions(jobs)
-                if completions:
-                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
+                complete(cursor, _completions(jobs), "%s")
                 dbapi.commit()
                 return
             rows = list(chains.rows(jobs))
-            completions = _completions(jobs)
+            # Before the pipeline, which gives no row counts: an answer whose reservation was
+            # taken over must fail its transaction (one round trip per keyed request).
+            complete(cursor, _completions(jobs), "%s")
             # Insert, head update and COMMIT in one round trip (plus the lock's): this
             # path serves the small groups, where round trips are most of the time.
             with dbapi.pipeline():
@@ -625,8 +653,6 @@ class ChainWriter:
                     rows,
                 )
                 cursor.executemany(move_heads, _head_rows(chains))
-                if completions:
-                    cursor.executemany(COMPLETE_SQL.format(p="%s"), completions)
                 dbapi.commit()
 
     @staticmethod

@@ -61,7 +61,7 @@ class World:
 
 @pytest.fixture
 async def world(database: Database) -> AsyncIterator[World]:
-    settings = Settings(database_url=database.url, bootstrap_operator_key=OPERATOR_KEY)
+    settings = Settings(database_url=database.url, bootstrap_operator_key=OPERATOR_KEY, access_log="off")
     app = create_app(settings, database, migrate=False)
     async with app.router.lifespan_context(app):
         transport = httpx.ASGITransport(app=app)

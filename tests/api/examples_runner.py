@@ -3,7 +3,8 @@
 Each file holds one operation's example in our invented scenario:
   {"operation_id", "summary", "role", "method", "path", "query", "request", "status", "response"}
 `role` names whose key sends it (operator, committee, portal, or none). Paths may hold
-{allocation_id}, filled from the latest create_allocation answer.
+{allocation_id}, filled from the latest create_allocation answer, and {replaced_key_id}, the key a
+second create_key for the same role replaced.
 
 `python -m tests.api.examples_runner` rewrites the response halves from a fresh run (the requests
 are the hand-written part); the test in test_examples.py replays every request and checks each
@@ -31,13 +32,17 @@ def load_examples() -> list[tuple[Path, dict[str, Any]]]:
 async def replay(client: httpx.AsyncClient, operator_key: str) -> list[tuple[Path, dict[str, Any], httpx.Response]]:
     keys: dict[str, str] = {"operator": operator_key}
     context: dict[str, str] = {}
+    key_ids: dict[str, str] = {}
     done = []
     for path, ex in load_examples():
         headers = {"Authorization": f"Bearer {keys[ex['role']]}"} if ex["role"] != "none" else {}
         url = ex["path"].format(**context)
         r = await client.request(ex["method"], url, json=ex.get("request"), params=ex.get("query"), headers=headers)
         if ex["operation_id"] == "create_key" and r.status_code == 201:
-            keys[r.json()["role"]] = r.json()["secret"]
+            role = r.json()["role"]
+            if role in key_ids:  # a second key for a role: the rotation examples revoke the first
+                context["replaced_key_id"] = key_ids[role]
+            keys[role], key_ids[role] = r.json()["secret"], r.json()["key_id"]
         if ex["operation_id"] == "create_allocation" and r.status_code == 201:
             context["allocation_id"] = r.json()["allocation_id"]
         done.append((path, ex, r))

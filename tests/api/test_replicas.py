@@ -36,7 +36,7 @@ class Replica:
         self.port = free_port()
         self.base = f"http://127.0.0.1:{self.port}"
         env = os.environ | {"MIXLINE_DATABASE_URL": database_url, "MIXLINE_BOOTSTRAP_OPERATOR_KEY": OPERATOR}
-        self.log = open(workdir / f"replica-{self.port}.log", "w")  # noqa: SIM115 - closed in stop()
+        self.log = open(workdir / f"replica-{self.port}.log", "w")
         mixline = Path(sys.executable).with_name("mixline")
         self.proc = subprocess.Popen(
             [str(mixline), "serve", "--port", str(self.port), "--no-migrate"],

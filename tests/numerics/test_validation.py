@@ -136,6 +136,27 @@ def test_correlation_outside_unit_interval() -> None:
     assert err.field == "correlation[0][1]" and "1.2" in err.reason
 
 
+def test_correlation_one_ulp_outside_is_rounding() -> None:
+    # 1 + 2**-52 is the next float above 1 (IEEE 754 double); a matrix computed in floating point
+    # (e.g. a covariance scaled by its volatilities) puts it on the diagonal.
+    one_up = float(np.nextafter(1.0, 2.0))
+    assert one_up == 1.0000000000000002
+    near = [row[:] for row in CORR]
+    for i in range(len(near)):
+        near[i][i] = one_up
+    inputs = build_inputs(CODES, MU, 0.02, volatilities=VOLS, correlation=near)
+    exact = build_inputs(CODES, MU, 0.02, volatilities=VOLS, correlation=CORR)
+    np.testing.assert_array_equal(inputs.covariance, exact.covariance)  # the unit diagonal is restored
+    # Beyond the 1e-12 tolerance it is a claim, and refused with the value as sent.
+    beyond = [row[:] for row in CORR]
+    beyond[0][1] = beyond[1][0] = 1.0 + 1e-9
+    err = refused(correlation=beyond)
+    assert err.field == "correlation[0][1]" and "1.000000001" in err.reason
+    off = [row[:] for row in CORR]
+    off[2][2] = 1.0 + 1e-9
+    assert refused(correlation=off).field == "correlation[2][2]"
+
+
 def test_correlation_not_psd() -> None:
     bad = [[1.0, 0.9, -0.9], [0.9, 1.0, 0.9], [-0.9, 0.9, 1.0]]
     err = refused(codes=CODES[:3], expected_returns=MU[:3], volatilities=VOLS[:3], correlation=bad)

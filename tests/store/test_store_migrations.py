@@ -57,7 +57,7 @@ def test_models_match_the_migrations(db_url: str) -> None:
 
 
 def test_one_head_shipped_as_package_data() -> None:
-    assert script_heads() == frozenset({"0005"})
+    assert script_heads() == frozenset({"0006"})
     migrations = Path(__file__).resolve().parents[2] / "service" / "store" / "migrations"
     assert (migrations / "env.py").is_file()
 
@@ -102,7 +102,7 @@ def test_the_lifecycle_revision_keeps_the_version_in_force(empty_db_url: str) ->
     db = Database(empty_db_url)
     try:
         db.upgrade()
-        downgrade(db.engine, "0004")
+        downgrade(db.engine, "0005")
         with db.engine.begin() as conn:
             conn.execute(text("INSERT INTO plans (plan_id, name, currency, policy, active_version, created_at) "
                               "VALUES ('p', 'P', 'USD', '{}', 'v1', :t)"), {"t": "2026-11-01 00:00:00+00:00"})

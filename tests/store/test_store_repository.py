@@ -22,10 +22,12 @@ from service.store import (
     insert_mix,
     insert_plan,
     list_allocations,
+    list_keys,
     list_lifecycle,
     lock_lifecycle,
     record_activation,
     record_retirement,
+    revoke_key,
     secret_hash,
     secret_matches,
     upsert_key,
@@ -40,11 +42,12 @@ SOLVED = {"tangency": {"weights": {"GLEQ": 1.0}, "sharpe_ratio": 0.31}}
 def test_public_names_are_exactly_the_interface() -> None:
     assert sorted(store.__all__) == sorted(
         [
-            "GENESIS_HASH", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream", "IdempotencyCompletion", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
+            "GENESIS_HASH", "HeadSigner", "SignedHead", "check_against_head", "current_head", "load_public_key", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream", "IdempotencyCompletion", "IdempotencyLeaseLost", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
-            "latest_allocations", "list_allocations", "secret_hash", "secret_matches", "MixLifecycle",
-            "list_lifecycle", "lock_lifecycle", "record_activation", "record_retirement",
+            "latest_allocations", "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches",
+            "MixLifecycle", "list_lifecycle", "lock_lifecycle", "record_activation",
+            "record_retirement",
             "upsert_key", "verify_chain",
         ]
     )
@@ -110,6 +113,34 @@ def test_reading_refuses_writes(database: Database, new_plan_id: str) -> None:
         insert_plan(s, plan_id=new_plan_id, name="P", currency="EUR", policy={})
     with database.reading() as s:
         assert get_plan(s, new_plan_id) is None
+
+
+def test_keys_list_expire_and_revoke(database: Database, plan_id: str) -> None:
+    expires = datetime(2031, 5, 17, 9, 30, tzinfo=UTC)
+    with database.writing() as s:
+        first = insert_key(s, key_id=f"a-{plan_id}", plan_id=plan_id, role="portal", secret_hash=secret_hash("1"))
+        insert_key(s, key_id=f"b-{plan_id}", plan_id=plan_id, role="committee", secret_hash=secret_hash("2"),
+                   expires_at=expires)
+    assert first.expires_at is None and first.revoked_at is None
+    with database.reading() as s:
+        listed = list_keys(s, plan_id)
+        assert list_keys(s, plan_id + "-other") == []
+    assert [k.key_id for k in listed] == [f"a-{plan_id}", f"b-{plan_id}"]
+    assert listed[1].expires_at == expires and listed[1].revoked_at is None
+    assert listed[1].unusable_at(expires - timedelta(seconds=1)) is None
+    assert listed[1].unusable_at(expires) == "expired"
+    when = datetime(2030, 1, 2, 3, 4, 5, tzinfo=UTC)
+    with database.writing() as s:
+        revoked = revoke_key(s, plan_id, f"a-{plan_id}", now=when)
+        assert revoke_key(s, plan_id, "no-such-key", now=when) is None
+        assert revoke_key(s, plan_id + "-other", f"a-{plan_id}", now=when) is None  # another plan's
+    assert revoked is not None and revoked.revoked_at == when and revoked.unusable_at(when) == "revoked"
+    with database.writing() as s:  # revoking again keeps the first time
+        again = revoke_key(s, plan_id, f"a-{plan_id}", now=when + timedelta(days=1))
+    assert again is not None and again.revoked_at == when
+    with database.reading() as s:
+        key = get_key(s, f"a-{plan_id}")
+    assert key is not None and key.revoked_at == when
 
 
 def test_key_round_trip_conflict_and_upsert(database: Database, plan_id: str) -> None:

@@ -10,9 +10,9 @@ from typing import Any
 
 import pytest
 from sqlalchemy import text
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.exc import DBAPIError, IntegrityError
 
-from service.store import ChainWriter, Database, LogBatch, verify_chain
+from service.store import ChainWriter, Database, LogBatch, insert_plan, verify_chain
 from tests.store.conftest import (
     CREATED_AT,
     MIX_VERSION,
@@ -203,3 +203,37 @@ def test_sqlite_wal_is_checkpointed_in_the_background(database: Database, plan_i
     while path.stat().st_size == before and time.monotonic() < deadline:
         time.sleep(0.02)
     assert path.stat().st_size > before
+
+
+def test_writer_out_of_reach_fails_jobs_fast_and_reconnects(tmp_path: Path) -> None:
+    # A database path that cannot be opened: every job fails with SQLAlchemy's error of an
+    # unreachable database, one connect attempt serves the jobs of the next half second, and
+    # the writer connects again once the file is there.
+    path = tmp_path / "gone.db"
+    path.mkdir()
+    db = Database(f"sqlite:///{path}")
+    attempts = []
+    connect = db.engine.raw_connection
+
+    def counted() -> Any:
+        attempts.append(time.monotonic())
+        return connect()
+
+    db.engine.raw_connection = counted  # type: ignore[method-assign]
+    db.start()
+    try:
+        for i in range(5):
+            with pytest.raises(DBAPIError) as info:
+                db.writer.append(batch("p", [f"x-{i}"]))
+            assert info.value.connection_invalidated
+        assert len(attempts) == 1
+        time.sleep(ChainWriter.RECONNECT_PAUSE_SECONDS + 0.05)
+        path.rmdir()
+        db.upgrade()
+        with db.writing() as s:
+            insert_plan(s, plan_id="p", name="P", currency="EUR", policy={})
+        db.writer.append(batch("p", ["x-ok"]))
+        assert len(attempts) == 2
+        assert verify_chain(db, "p").ok
+    finally:
+        db.close()
