@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from collections.abc import Callable, Coroutine
+from typing import Annotated, Any
 
 import orjson
 from fastapi import APIRouter, Query, Request
+from fastapi.routing import APIRoute
 from starlette.responses import Response
 
 from service.store import get_allocation, list_allocations
@@ -41,13 +43,33 @@ def _documented(body: str) -> dict[str, object]:
 # so they read the same things directly, through the same KeyRing, and declare them above.
 
 
+class PlainRoute(APIRoute):
+    """A FastAPI route (documented from its declaration, as any other) whose handler calls the
+    endpoint with the plan id and the request, and nothing else: FastAPI's per-request machinery
+    (body reading, dependency solving, response validation) had nothing to do for these two
+    endpoints but still cost about a third of a request's CPU. FastAPI's documented extension
+    point for this is `get_route_handler`."""
+
+    def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
+        endpoint = self.endpoint
+
+        async def handler(request: Request) -> Response:
+            response: Response = await endpoint(request.path_params["plan_id"], request)
+            return response
+
+        return handler
+
+
+posting = APIRouter(prefix="/v1/plans/{plan_id}/allocations", tags=["allocations"], route_class=PlainRoute)
+
+
 async def _read(request: Request) -> tuple[AppState, Caller, str | None]:
     state: AppState = request.app.state.mixline
     caller = await state.caller(request.headers.get("authorization"))
     return state, caller, request.headers.get("idempotency-key")
 
 
-@router.post(
+@posting.post(
     "", status_code=201, response_model=AllocationOut, operation_id="create_allocation",
     responses=problems(400, *AUTHED, 409, 413), openapi_extra=_documented("AllocationIn"),
 )
@@ -56,7 +78,7 @@ async def create_allocation(plan_id: str, request: Request) -> Response:
     return await allocate_one(state, caller, plan_id, await request.body(), key)
 
 
-@router.post(
+@posting.post(
     "/batch", status_code=201, response_model=BatchOut, operation_id="create_allocation_batch",
     responses=problems(400, *AUTHED, 409, 413), openapi_extra=_documented("BatchIn"),
 )

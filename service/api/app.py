@@ -147,6 +147,7 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.mixline = state
     app.state.metrics = metrics
     errors.install(app)
+    app.include_router(allocations.posting)  # the busiest routes first: matched soonest
     routers = [module.router for module in (allocations, plans, estimating, mixes, impact, audit, operations)]
     for router in routers:
         app.include_router(router)
