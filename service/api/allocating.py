@@ -22,7 +22,6 @@ from service.store import LogBatch, LogStream
 
 from . import idempotency
 from .auth import Caller
-from .batch_process import BatchConversation
 from .deciding import utc_now_text
 from .responses import raw_json_response
 from .state import AppState
@@ -67,24 +66,15 @@ async def allocate_batch(
         owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
         if isinstance(owned, Response):
             return owned
-        stream = LogStream(plan_id, view.version, created_at, size)
-        payload = await _log(state, owned, state.db.writer.submit_stream(stream),
-                             run_in_threadpool(_feed, talk, stream, owned))
+        claim = owned
+        pull = talk.puller(lambda body: None if claim is None else claim.completion(201, body))
+        stream = LogStream(plan_id, view.version, created_at, size, pull=pull)
+        await _log(state, owned, state.db.writer.submit_stream(stream))
+        payload = talk.body
     finally:
         talk.close()
     state.metrics.allocations.labels(plan_id).inc(size)
     return raw_json_response(payload, 201)
-
-
-def _feed(talk: BatchConversation, stream: LogStream, owned: idempotency.Claim | None) -> bytes:
-    """Records from the batch process into the log writer's stream, then the answer."""
-    try:
-        payload = talk.write(stream.put)
-        stream.finish(None if owned is None else owned.completion(201, payload))
-        return payload
-    except BaseException as error:
-        stream.fail(error)
-        raise
 
 
 async def _log(

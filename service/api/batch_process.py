@@ -33,6 +33,7 @@ from typing import Any
 
 from service.allocation import Setting
 from service.allocation.batch_worker import serve_batches
+from service.store import Finished, IdempotencyCompletion
 
 log = logging.getLogger("mixline.batch")
 
@@ -43,6 +44,7 @@ class BatchConversation:
         self._process = process
         self._conn = conn
         self._open = True
+        self.body = b""
 
     def _answer(self) -> tuple[Any, ...]:
         try:
@@ -67,17 +69,23 @@ class BatchConversation:
         self._conn.send(("decide", on))
         return int(self._answer()[1])
 
-    def write(self, put: Callable[[list[str], list[str], list[str]], None]) -> bytes:
-        """Hand every chunk of records to `put`, then return the answer body."""
+    def puller(self, completion: Callable[[bytes], IdempotencyCompletion | None]) -> Callable[[float], Any]:
+        """For a LogStream the log writer pulls from: asks the child to write, then hands over each
+        chunk of records as it arrives and, last, Finished with `completion(answer)`. The answer
+        body is then `self.body`. The writer thread reads the pipe itself: no thread between."""
         self._conn.send(("write",))
-        while True:
+
+        def pull(timeout: float) -> Any:
+            if not self._conn.poll(timeout):
+                return None
             message = self._answer()
             if message[0] == "rows":
-                put(message[1], message[2], message[3])
-            elif message[0] == "answer":
-                body = self._conn.recv_bytes()
-                self._open = False
-                return body
+                return message[1], message[2], message[3]
+            self.body = self._conn.recv_bytes()
+            self._open = False
+            return Finished(completion(self.body))
+
+        return pull
 
     def close(self) -> None:
         """End the conversation (cancelling it in the child if it is still open)."""

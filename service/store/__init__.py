@@ -17,6 +17,7 @@ from service.store.key_secrets import secret_hash, secret_matches
 from service.store.records import (
     BadRow,
     ChainReport,
+    Finished,
     IdempotencyCompletion,
     KeyRecord,
     LogBatch,
@@ -61,6 +62,7 @@ __all__ = [
     "ChainWriter",
     "Conflict",
     "Database",
+    "Finished",
     "HeadSigner",
     "IdempotencyCompletion",
     "IdempotencyLeaseLost",

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import queue
 import secrets
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
@@ -118,10 +118,21 @@ class LogStream:
     Idempotency-Key answer, if any). A batch that fails is marked abandoned: its rows stay in
     the chain, which never forgets, but no read returns them.
 
-    The producer calls ``put`` until ``size`` rows were given, then ``finish``; or ``fail``.
+    The producer calls ``put`` until ``size`` rows were given, then ``finish``; or ``fail``. Or
+    the writer pulls: ``pull(timeout)`` returns the next (allocation_ids, member_ids, bodies), a
+    ``Finished``, or None when nothing came within ``timeout`` (it may raise to abandon).
     """
 
-    def __init__(self, plan_id: str, mix_version: str, created_at: str, size: int, *, wait_seconds: float = 300.0) -> None:
+    def __init__(
+        self,
+        plan_id: str,
+        mix_version: str,
+        created_at: str,
+        size: int,
+        *,
+        wait_seconds: float = 300.0,
+        pull: Callable[[float], Any] | None = None,
+    ) -> None:
         self.plan_id = plan_id
         self.mix_version = mix_version
         self.created_at = created_at
@@ -129,6 +140,7 @@ class LogStream:
         self.batch_id = f"ab_{secrets.token_hex(12)}"
         self._wait = wait_seconds
         self._chunks: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self._pull = pull
         self._seen = 0
 
     def put(self, allocation_ids: Sequence[str], member_ids: Sequence[str], bodies: Sequence[str]) -> None:
@@ -146,10 +158,15 @@ class LogStream:
     def next_chunk(self, timeout: float) -> LogBatch | Finished | None:
         """The next chunk as a LogBatch, the finish, or None if nothing came within ``timeout``.
         Raises the producer's error, or TimeoutError when the producer went quiet for too long."""
-        try:
-            chunk = self._chunks.get(timeout=timeout)
-        except queue.Empty:
-            return None
+        if self._pull is not None:
+            chunk = self._pull(timeout)
+            if chunk is None:
+                return None
+        else:
+            try:
+                chunk = self._chunks.get(timeout=timeout)
+            except queue.Empty:
+                return None
         if isinstance(chunk, BaseException):
             raise chunk
         if isinstance(chunk, Finished):

@@ -42,7 +42,7 @@ SOLVED = {"tangency": {"weights": {"GLEQ": 1.0}, "sharpe_ratio": 0.31}}
 def test_public_names_are_exactly_the_interface() -> None:
     assert sorted(store.__all__) == sorted(
         [
-            "GENESIS_HASH", "HeadSigner", "SignedHead", "check_against_head", "current_head", "load_public_key", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "LogStream", "IdempotencyCompletion", "IdempotencyLeaseLost", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
+            "GENESIS_HASH", "HeadSigner", "SignedHead", "check_against_head", "current_head", "load_public_key", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "Finished", "LogStream", "IdempotencyCompletion", "IdempotencyLeaseLost", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
             "latest_allocations", "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches",
