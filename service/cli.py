@@ -92,7 +92,6 @@ def _demo(settings: Settings, host: str, port: int) -> int:
         insert_key,
         insert_plan,
         secret_hash,
-        set_active_version,
     )
     from service.timestamps import rfc3339, utc_now
 
@@ -121,9 +120,9 @@ def _demo(settings: Settings, host: str, port: int) -> int:
             )
     state = AppState(settings, db, Metrics())
     plan = state.plan(DEMO_PLAN["plan_id"])
-    created, doc = state.mixes.publish(plan, MixIn.model_validate(DEMO_MIX))
-    with db.writing() as s:
-        set_active_version(s, plan.plan_id, DEMO_MIX["version"])
+    # Published and activated by the demo's own set-up, not by a key.
+    created, doc = state.mixes.publish(plan, MixIn.model_validate(DEMO_MIX), "demo-setup")
+    state.mixes.activate(plan.plan_id, DEMO_MIX["version"], "demo-setup")
     secrets_by_role = {}
     expires_at = utc_now() + timedelta(days=DEMO_KEY_DAYS)
     with db.writing() as s:

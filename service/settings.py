@@ -78,6 +78,10 @@ class Settings(BaseSettings):
     # Largest mix the numerical cross-checks run for when the publish request does not say
     # (they take ~5 s at 200 assets and ~50 s at 400); asked for explicitly above it: 422.
     max_cross_check_assets: int = Field(default=250, ge=0)
+    # How long a replica may answer allocations from the active version it last read, in
+    # seconds: an activation on any replica is in force everywhere within this (bounded so that
+    # replicas always agree within 5 s).
+    active_version_ttl_seconds: float = Field(default=1.0, ge=0.0, le=2.0)
 
     @model_validator(mode="after")
     def _refuse_placeholder_secrets(self) -> Settings:

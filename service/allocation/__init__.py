@@ -8,9 +8,22 @@ from .answers import answer_texts
 from .disclosures import DISCLOSURES, DISCLOSURES_VERSION, disclosures_for
 from .engine import Allocations, Setting, allocate, allocate_each, decide, line_for
 from .errors import AllocationError
+from .estimation import estimate_mix, parse_dates
 from .identifiers import AllocationIds
 from .impact import Impact, impact
 from .issues import MAX_LISTED, FieldIssue, MemberErrors, batch_field, single_field
+from .lifecycle import (
+    RESERVED_VERSION_NAMES,
+    Activation,
+    LifecycleConflict,
+    MixState,
+    check_version_name,
+    plan_activation,
+    plan_retirement,
+    require_candidate,
+    require_in_force,
+    state_of,
+)
 from .line import AllocationLine
 from .members import MEMBER_ID_PATTERN, Members, read_members
 from .mixes import (
@@ -18,6 +31,7 @@ from .mixes import (
     MixView,
     canonical_inputs,
     canonical_text,
+    check_decimal_rates,
     content_hash,
     cross_checks_wanted,
     frontier_document,
@@ -31,6 +45,19 @@ from .records import RECORD_FORM, Context, Decisions, decisions_from_record, rec
 from .requests import VERSION_PATTERN, AllocationRequest, TooManyMembers, parse_json, read_batch, read_single
 
 __all__ = [
+    "RESERVED_VERSION_NAMES",
+    "Activation",
+    "LifecycleConflict",
+    "MixState",
+    "check_decimal_rates",
+    "estimate_mix",
+    "parse_dates",
+    "check_version_name",
+    "plan_activation",
+    "plan_retirement",
+    "require_candidate",
+    "require_in_force",
+    "state_of",
     "DISCLOSURES",
     "DISCLOSURES_VERSION",
     "MAX_LISTED",

@@ -30,6 +30,45 @@ from .errors import AllocationError
 # Version of the canonical form below; part of the hash so a future change cannot collide.
 CANONICAL_FORM = "mixline.mix.v1"
 
+# Above these an annual rate reads as a percentage typed as a number (7 for 7 %), not a decimal.
+MAX_DECIMAL_RETURN = 1.0
+MAX_DECIMAL_VOLATILITY = 1.0
+MAX_DECIMAL_RISK_FREE_RATE = 0.5
+_DECIMALS = "rates and volatilities are annual decimals (0.05 = 5 %)"
+
+
+def percent_like(value: float, kind: str) -> str | None:
+    """Why ``value`` (an annual ``expected_return``, ``volatility`` or ``risk_free_rate``) looks
+    like a percentage rather than a decimal, or None when it does not."""
+    limit = {
+        "expected_return": MAX_DECIMAL_RETURN,
+        "volatility": MAX_DECIMAL_VOLATILITY,
+        "risk_free_rate": MAX_DECIMAL_RISK_FREE_RATE,
+    }[kind]
+    if value > limit:
+        return f"{kind.replace('_', ' ')} {value:g} looks like a percentage: {_DECIMALS}"
+    return None
+
+
+def check_decimal_rates(
+    expected_returns: Sequence[float],
+    volatilities: Sequence[float | None],
+    risk_free_rate: float,
+    covariance: Sequence[Sequence[float]] | None = None,
+) -> None:
+    """Refuse values that look like percentages; ``field`` names the first one."""
+    for i, mu in enumerate(expected_returns):
+        if reason := percent_like(mu, "expected_return"):
+            raise AllocationError(f"assets[{i}].expected_return", reason)
+    for i, vol in enumerate(volatilities):
+        if vol is not None and (reason := percent_like(vol, "volatility")):
+            raise AllocationError(f"assets[{i}].volatility", reason)
+    for i, row in enumerate(covariance or []):
+        if i < len(row) and row[i] > 0 and (reason := percent_like(math.sqrt(row[i]), "volatility")):
+            raise AllocationError(f"covariance[{i}][{i}]", f"variance {row[i]:g}: {reason}")
+    if reason := percent_like(risk_free_rate, "risk_free_rate"):
+        raise AllocationError("risk_free_rate", reason)
+
 
 def canonical_inputs(
     *,
@@ -206,21 +245,43 @@ class MixView(MixTerms):
         )
 
 
-def frontier_document(view: MixView, frontier: Frontier, points: int) -> dict[str, Any]:
+# When a spaced point falls on a labelled one, the label wins (the first kinds are the rarer).
+_KIND_ORDER = {"min_variance": 0, "tangency": 1, "corner": 2, "spaced": 3}
+
+
+def frontier_document(view: MixView, frontier: Frontier, points: int, spacing: str = "return") -> dict[str, Any]:
+    """``points`` frontier portfolios evenly spaced in return or volatility, plus every corner
+    portfolio and the tangency, sorted by expected return, each with its ``kind``."""
     solved = view.solved
     codes = view.codes
-    sharpe = view.solved.tangency.sharpe_ratio
+    inputs = solved.inputs
+    labelled: list[tuple[str, Portfolio]] = [("corner", p) for p in frontier.corners(inputs)]
+    labelled[0] = ("min_variance", labelled[0][1])
+    labelled.append(("tangency", solved.tangency))
+    scale = max(1.0, float(np.max(np.abs(inputs.expected_returns))))
+    every = labelled + [("spaced", p) for p in frontier.sample(points, inputs, spacing)]
+    every.sort(key=lambda kp: (kp[1].expected_return, _KIND_ORDER[kp[0]]))
+    merged: list[tuple[str, Portfolio]] = []
+    for kind, p in every:
+        if merged and abs(p.expected_return - merged[-1][1].expected_return) <= 1e-12 * scale:
+            if _KIND_ORDER[kind] < _KIND_ORDER[merged[-1][0]]:
+                merged[-1] = (kind, p)
+            continue
+        merged.append((kind, p))
+    sharpe = solved.tangency.sharpe_ratio
     return {
         "version": view.version,
         "content_hash": view.content_hash,
+        "spacing": spacing,
         "points": [
             {
+                "kind": kind,
                 "expected_return": p.expected_return,
                 "volatility": p.volatility,
                 "sharpe_ratio": p.sharpe_ratio,
                 "weights": _cleaned_weights(codes, p.weights),
             }
-            for p in frontier.sample(points, solved.inputs)
+            for kind, p in merged
         ],
         "tangency": portfolio_document(solved.tangency, codes),
         "min_variance": portfolio_document(solved.min_variance, codes),

@@ -33,7 +33,7 @@ async def allocate_one(
     caller.require(plan_id, "portal")
     plan = state.plan(plan_id)
     request = read_single(parse_json(raw))
-    view = state.mixes.view(plan_id, request.mix_version)
+    view = state.mixes.view_in_force(plan_id, request.mix_version)
     decided = await state.singles.decide(plan_id, plan.currency, plan.policy, view, request.members[0])
     owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
     if isinstance(owned, Response):
@@ -59,7 +59,7 @@ async def allocate_batch(
     talk = await run_in_threadpool(state.batches.conversation)
     try:
         version = await run_in_threadpool(talk.read, raw, state.settings.batch_limit)
-        view = state.mixes.view(plan_id, version)
+        view = state.mixes.view_in_force(plan_id, version)
         created_at = utc_now_text()
         on = Setting(plan_id, plan.currency, plan.policy, view.terms(), created_at)
         size = await run_in_threadpool(talk.decide, on)

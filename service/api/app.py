@@ -20,13 +20,13 @@ from service.settings import Settings
 from service.store import Database, secret_hash, upsert_key
 from service.version import VERSION
 
-from . import allocations, audit, errors, impact, mixes, operations, plans
+from . import allocations, audit, errors, estimating, impact, mixes, operations, plans
 from .auth import BOOTSTRAP_KEY_ID
 from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
 from .gateway import Gateway, csv_routes
 from .metrics import Metrics, MetricsMiddleware
-from .schemas import AllocationIn, BatchIn, MixIn, Problem
+from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
 from .state import AppState
 
 log = logging.getLogger("mixline.api")
@@ -148,12 +148,15 @@ def create_app(settings: Settings | None = None, database: Database | None = Non
     app.state.metrics = metrics
     errors.install(app)
     app.include_router(allocations.posting)  # the busiest routes first: matched soonest
-    for module in (allocations, plans, mixes, impact, audit, operations):
-        app.include_router(module.router)
+    routers = [module.router for module in (allocations, plans, estimating, mixes, impact, audit, operations)]
+    for router in routers:
+        app.include_router(router)
     app.include_router(audit.keys_router)
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
-    app.add_middleware(Gateway, log=state.access_log, csv_paths=csv_routes(app.routes))
+    # The routers' own routes: the application keeps included routers as branches, not routes.
+    csv_paths = csv_routes(route for router in routers for route in router.routes)
+    app.add_middleware(Gateway, log=state.access_log, csv_paths=csv_paths)
     install_openapi(app)
     install_docs(app)
     return app
@@ -178,7 +181,8 @@ def install_openapi(app: FastAPI) -> None:
         components = doc.setdefault("components", {}).setdefault("schemas", {})
         # Models of the bodies that hot routes read themselves (see bodies.py), and the problem shape.
         _, defs = models_json_schema(
-            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation"), (MixIn, "validation")],
+            [(Problem, "validation"), (AllocationIn, "validation"), (BatchIn, "validation"), (MixIn, "validation"),
+             (EstimateIn, "validation")],
             ref_template="#/components/schemas/{model}",
         )
         for name, schema in defs.get("$defs", {}).items():

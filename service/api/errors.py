@@ -15,7 +15,9 @@
 One problem type per kind of error: every 422 is urn:mixline:problem:validation, whether the
 schema, the allocation rules or the numerics refused the input; every 404 is
 urn:mixline:problem:not-found, whether a route or a record is missing. Domain errors from below
-(AllocationError, numerics' InputError) become 422 here; request validation errors become 422
+become problems here: a LifecycleConflict (a version not in force, a retired version activated,
+the only version in force retired) 409 with ``active_version``; any other AllocationError and
+numerics' InputError 422; request validation errors become 422
 with one entry per field; a database that cannot be reached becomes 503 with Retry-After. No
 handler ever echoes the offending input back, so a NaN or a megabyte of garbage can never break
 the error response itself. Every problem body names the request's `request_id`, the id the
@@ -36,7 +38,7 @@ from sqlalchemy import exc as database_errors
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
-from service.allocation import AllocationError, MemberErrors
+from service.allocation import AllocationError, LifecycleConflict, MemberErrors
 from service.allocation.requests import TooManyMembers
 from service.numerics import InputError
 from service.store import IdempotencyLeaseLost
@@ -179,7 +181,7 @@ def field_error(field: str, reason: str) -> dict[str, str]:
 
 def _location(loc: Sequence[Any]) -> str:
     parts = list(loc)
-    if parts and parts[0] == "body":
+    if parts and parts[0] in ("body", "query", "path"):
         parts = parts[1:]
     out = ""
     for p in parts:
@@ -188,7 +190,8 @@ def _location(loc: Sequence[Any]) -> str:
         else:
             # pydantic puts union member names and function-validator tags in loc; they are not fields.
             text = str(p)
-            if text.startswith("function-") or text in {"str", "int", "float", "list[float]"}:
+            # "[key]" marks an error in a mapping's key, which the key before it already names.
+            if text.startswith("function-") or text in {"str", "int", "float", "list[float]", "[key]"}:
                 continue
             out += ("." if out else "") + text
     return out or "body"
@@ -225,6 +228,12 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
         return problem_response(
             exc.status, exc.title, exc.detail, slug=exc.slug, errors=exc.errors, headers=exc.headers,
             instance=path,
+        )
+    if isinstance(exc, LifecycleConflict):
+        slug = "version-not-in-force" if exc.field == "mix_version" else "version-state"
+        return problem_response(
+            409, "Conflict", f"{exc.field}: {exc.reason}", slug=slug, errors=[field_error(exc.field, exc.reason)],
+            instance=path, extra={"active_version": exc.active_version},
         )
     if isinstance(exc, IdempotencyLeaseLost):
         return response_for(

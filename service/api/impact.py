@@ -11,7 +11,7 @@ from fastapi import APIRouter
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
-from service.allocation import Setting, impact
+from service.allocation import Setting, impact, require_candidate
 from service.store import latest_allocations
 
 from .deciding import utc_now_text
@@ -43,6 +43,7 @@ def impact_document(state: AppState, plan_id: str, version: str) -> dict[str, ob
     plan = state.plan(plan_id)
     candidate = state.mixes.view(plan_id, version)
     active = state.active_version(plan_id)
+    require_candidate(version, state.mixes.state(plan_id, version)[0], active)
     if active is None:
         raise ConflictError(f"plan {plan_id!r} has no active version to compare {version!r} with")
     with state.db.reading() as s:

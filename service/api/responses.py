@@ -16,7 +16,9 @@ _DESCRIPTIONS = {
     403: "Right key, wrong role",
     404: "Not found (or another plan's)",
     409: "Conflict",
+    406: "None of the accepted media types can be given",
     413: "Too large",
+    415: "Unsupported media type",
     422: "Invalid or unanswerable input",
     503: "Not ready",
 }

@@ -19,7 +19,12 @@ from pydantic import (
     model_validator,
 )
 
-from service.allocation import MEMBER_ID_PATTERN
+from service.allocation import (
+    MEMBER_ID_PATTERN,
+    AllocationError,
+    check_decimal_rates,
+    check_version_name,
+)
 from service.allocation.requests import VERSION_PATTERN
 
 # Separates a sub-field from the reason in a model validator's message (see errors.validation_errors).
@@ -65,6 +70,9 @@ class Problem(BaseModel):
     detail: str
     instance: str | None = None
     errors: list[dict[str, str]] | None = None
+    active_version: str | None = Field(
+        default=None, description="on a 409 about versions: the version in force (null when none is yet)"
+    )
 
 
 # ---- plans and keys -------------------------------------------------------------------------
@@ -126,11 +134,13 @@ class KeyListOut(BaseModel):
 # ---- risky mixes ----------------------------------------------------------------------------
 
 
-# Annual decimals; the ranges only refuse typos (5 = 500 %) and keep arithmetic far from overflow.
-ExpectedReturn = Annotated[float, Field(ge=-1.0, le=5.0)]
-Volatility = Annotated[float, Field(gt=0.0, le=5.0)]
-Rate = Annotated[float, Field(gt=-1.0, lt=1.0)]
-MatrixEntry = Annotated[float, Field(ge=-25.0, le=25.0)]
+# Annual decimals. Values that look like percentages are refused by the mix rules
+# (allocation.check_decimal_rates), with a reason that says so; these ranges only keep arithmetic
+# far from overflow.
+ExpectedReturn = Annotated[float, Field(ge=-1.0, le=1e6)]
+Volatility = Annotated[float, Field(gt=0.0, le=1e6)]
+Rate = Annotated[float, Field(gt=-1.0, le=1e6)]
+MatrixEntry = Annotated[float, Field(ge=-1e6, le=1e6)]
 
 
 class AssetIn(Strict):
@@ -152,7 +162,7 @@ class FactorModelIn(Strict):
 
 
 class MixIn(Strict):
-    version: Identifier
+    version: str
     assets: Annotated[list[AssetIn], Field(min_length=1)]
     correlation: Matrix | None = None
     covariance: Matrix | None = None
@@ -166,6 +176,16 @@ class MixIn(Strict):
 
     @model_validator(mode="after")
     def _one_matrix(self) -> MixIn:
+        try:
+            check_version_name(self.version)
+            check_decimal_rates(
+                [a.expected_return for a in self.assets],
+                [a.volatility for a in self.assets],
+                self.risk_free_rate,
+                self.covariance,
+            )
+        except AllocationError as error:
+            raise at(error.field, error.reason) from None
         given = [k for k in ("correlation", "covariance", "factor_model") if getattr(self, k) is not None]
         if len(given) != 1:
             said = f"{' and '.join(given)} were given" if given else "none was given"
@@ -204,15 +224,43 @@ class MixOut(BaseModel):
     kkt_residual: float
     cross_checks: list[CrossCheckOut]
     active: bool | None = None
+    state: Literal["published", "active", "retired"] | None = None
+    lifecycle: MixVersionOut | None = None
+    inputs: dict[str, Any] | None = Field(
+        default=None, description="the published assumptions as stored (the canonical form that was hashed)"
+    )
+
+
+class MixVersionOut(BaseModel):
+    """One version's lifecycle; *_by are the key ids that did it."""
+
+    version: str
+    state: Literal["published", "active", "retired"]
+    content_hash: str
+    published_at: str
+    published_by: str | None
+    activated_at: str | None
+    activated_by: str | None
+    retired_at: str | None
+    retired_by: str | None
+
+
+class MixListOut(BaseModel):
+    plan_id: str
+    active_version: str | None
+    versions: list[MixVersionOut]
 
 
 class ActivationOut(BaseModel):
     plan_id: str
     active_version: str
     content_hash: str
+    retired_version: str | None = None
+    mix: MixVersionOut | None = None
 
 
 class FrontierPointOut(BaseModel):
+    kind: Literal["min_variance", "corner", "tangency", "spaced"]
     expected_return: float
     volatility: float
     sharpe_ratio: float
@@ -224,13 +272,52 @@ class AllocationLineOut(BaseModel):
     slope: float
 
 
+class MemberSplitOut(BaseModel):
+    allocation_id: str
+    risky_fraction: float
+    expected_return: float
+    volatility: float
+
+
 class FrontierOut(BaseModel):
     version: str
     content_hash: str
+    spacing: Literal["return", "volatility"]
     points: list[FrontierPointOut]
     tangency: PortfolioOut
     min_variance: PortfolioOut
     allocation_line: AllocationLineOut
+    member_split: MemberSplitOut | None = None
+
+
+class EstimateIn(Strict):
+    """A return history (simple returns per period, as decimals), one series per asset code."""
+
+    frequency: str = Field(description="daily, weekly, monthly, quarterly or annual")
+    returns: Annotated[dict[Code, list[float | None]], Field(min_length=1)]
+    dates: list[str] | None = Field(default=None, description="ISO dates, one per observation, increasing")
+    covariance_method: str = Field(default="sample", description="sample (unbiased) or shrinkage (Ledoit-Wolf 2004)")
+    expected_returns: str | dict[Code, float] = Field(
+        default="historical", description="historical (annualised means) or one annual decimal per asset code"
+    )
+    risk_free_rate: Rate
+    repair: bool = Field(default=False, description="take the nearest correlation matrix when the estimate is not positive definite")
+
+
+class EstimationOut(BaseModel):
+    observations: int
+    periods_per_year: int
+    covariance_method: str
+    shrinkage_intensity: float | None
+    condition_number: float
+    repaired: bool
+    repair_distance: float | None
+    expected_returns: str
+
+
+class EstimateOut(BaseModel):
+    mix: dict[str, Any] = Field(description="a body for POST .../mixes, without its version")
+    estimation: EstimationOut
 
 
 # ---- allocations ----------------------------------------------------------------------------

@@ -1,8 +1,10 @@
 """What one process keeps between requests: settings, the database, and caches of immutable things.
 
-Plans (their name, currency and policy) and published mixes never change once written, so a
-replica may keep them for its lifetime; the active version can change, so it is always read live;
-keys can be revoked or expire, so what a replica knows of one is re-read after a few seconds
+Plans (their name, currency and policy), keys and published mixes never change once written, so a
+replica may keep them for its lifetime. The active version can change on any replica: pages read
+it live, and allocations use what this process read at most ``active_version_ttl_seconds`` ago
+(an activation here is seen here at once), so every replica follows an activation within that.
+Keys can be revoked or expire, so what a replica knows of one is re-read after a few seconds
 (auth.py).
 """
 
@@ -12,9 +14,11 @@ import logging
 import multiprocessing
 import os
 import threading
+import time
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from typing import Any
 
 from sqlalchemy.exc import SQLAlchemyError
@@ -22,6 +26,7 @@ from starlette.concurrency import run_in_threadpool
 
 from service.allocation import (
     AllocationError,
+    MixState,
     MixView,
     Policy,
     canonical_inputs,
@@ -30,8 +35,12 @@ from service.allocation import (
     content_hash,
     cross_checks_wanted,
     is_finite_document,
+    plan_activation,
+    plan_retirement,
     published_document,
+    require_in_force,
     solve,
+    state_of,
 )
 from service.numerics import Frontier, MixInputs, SolvedMix, efficient_frontier
 from service.settings import Settings
@@ -40,6 +49,7 @@ from service.store import (
     Database,
     HeadSigner,
     KeyRecord,
+    MixLifecycle,
     PlanRecord,
     get_frontier,
     get_key,
@@ -47,6 +57,10 @@ from service.store import (
     get_plan,
     insert_frontier,
     insert_mix,
+    list_lifecycle,
+    lock_lifecycle,
+    record_activation,
+    record_retirement,
 )
 
 from .access_log import AccessLog
@@ -96,6 +110,9 @@ class MixCatalog:
         self._settings = settings
         self._views: dict[tuple[str, str], MixView] = {}
         self._published: dict[tuple[str, str], dict[str, Any]] = {}
+        self._inputs: dict[tuple[str, str], dict[str, Any]] = {}
+        # plan id -> (active version, monotonic time it was read)
+        self._active: dict[str, tuple[str | None, float]] = {}
         self._solved_by_hash: dict[str, SolvedMix] = {}
         self._frontiers: dict[str, Frontier] = {}
         self._pending: dict[str, Future[Frontier]] = {}
@@ -168,11 +185,14 @@ class MixCatalog:
             # Kept in memory all the same; a later replica solves it once more.
             log.warning("could not store the frontier of %s", digest, exc_info=True)
 
-    def _remember(self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any]) -> MixView:
+    def _remember(
+        self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any], inputs: dict[str, Any]
+    ) -> MixView:
         view = MixView.from_solved(version, digest, solved)
         with self._lock:
             self._views[(plan_id, version)] = view
             self._published[(plan_id, version)] = doc
+            self._inputs[(plan_id, version)] = inputs
             self._solved_by_hash[digest] = solved
         return view
 
@@ -189,7 +209,7 @@ class MixCatalog:
         if solved is None:
             solved = SolvedMix.from_document(record.solved["numerics"])
         doc = record.solved["published"]
-        return self._remember(plan_id, version, record.content_hash, solved, doc), doc
+        return self._remember(plan_id, version, record.content_hash, solved, doc, record.inputs), doc
 
     def view(self, plan_id: str, version: str) -> MixView:
         found = self._load(plan_id, version)
@@ -203,7 +223,82 @@ class MixCatalog:
             raise NotFound(f"mix version {version!r} not found in plan {plan_id!r}")
         return found[1]
 
-    def publish(self, plan: PlanView, request: MixIn) -> tuple[bool, dict[str, Any]]:
+    def inputs(self, plan_id: str, version: str) -> dict[str, Any]:
+        """The published assumptions as stored (the canonical form that was hashed)."""
+        self.published(plan_id, version)
+        return self._inputs[(plan_id, version)]
+
+    # ---- the lifecycle -----------------------------------------------------------------------
+
+    def active_version(self, plan_id: str, *, max_age: float | None = None) -> str | None:
+        """The plan's active version, read live, or as read at most ``max_age`` seconds ago."""
+        if max_age is not None:
+            known = self._active.get(plan_id)
+            if known is not None and time.monotonic() - known[1] <= max_age:
+                return known[0]
+        read_at = time.monotonic()
+        with self._db.reading() as s:
+            record = get_plan(s, plan_id)
+        if record is None:
+            raise NotFound(f"plan {plan_id!r} not found")
+        self._active[plan_id] = (record.active_version, read_at)
+        return record.active_version
+
+    def view_in_force(self, plan_id: str, version: str) -> MixView:
+        """The mix an allocation may use: ``version`` if it is the active one, else 409."""
+        require_in_force(version, self.active_version(plan_id, max_age=self._settings.active_version_ttl_seconds))
+        return self.view(plan_id, version)
+
+    def lifecycle(self, plan_id: str) -> tuple[str | None, list[MixLifecycle]]:
+        with self._db.reading() as s:
+            record = get_plan(s, plan_id)
+            if record is None:
+                raise NotFound(f"plan {plan_id!r} not found")
+            return record.active_version, list_lifecycle(s, plan_id)
+
+    def activate(self, plan_id: str, version: str, key_id: str) -> tuple[str | None, MixLifecycle]:
+        """Put ``version`` in force, retiring the one before; (the retired version, the new
+        lifecycle of ``version``). Activating the active version again changes nothing."""
+        with self._db.writing() as s:
+            active, found = self._locked(s, plan_id, version)
+            step = plan_activation(version, state_of(version, active_version=active, retired=found.retired_at is not None), active)
+            if step.changes:
+                record_activation(s, plan_id, version, retires=step.retires, key_id=key_id, at=datetime.now(UTC))
+        self._active[plan_id] = (version, time.monotonic())
+        return step.retires, self._entry(plan_id, version)
+
+    def retire(self, plan_id: str, version: str, key_id: str) -> MixLifecycle:
+        """Withdraw a version that is not in force, for good (409 for the active one)."""
+        with self._db.writing() as s:
+            active, found = self._locked(s, plan_id, version)
+            state = state_of(version, active_version=active, retired=found.retired_at is not None)
+            if plan_retirement(version, state, active):
+                record_retirement(s, plan_id, version, key_id=key_id, at=datetime.now(UTC))
+        return self._entry(plan_id, version)
+
+    @staticmethod
+    def _locked(s: Any, plan_id: str, version: str) -> tuple[str | None, MixLifecycle]:
+        try:
+            active, found = lock_lifecycle(s, plan_id, version)
+        except LookupError:
+            raise NotFound(f"plan {plan_id!r} not found") from None
+        if found is None:
+            raise NotFound(f"mix version {version!r} not found in plan {plan_id!r}")
+        return active, found
+
+    def _entry(self, plan_id: str, version: str) -> MixLifecycle:
+        _, entries = self.lifecycle(plan_id)
+        return next(e for e in entries if e.version == version)
+
+    def state(self, plan_id: str, version: str) -> tuple[MixState, MixLifecycle]:
+        """A version's state and lifecycle, read live."""
+        active, entries = self.lifecycle(plan_id)
+        for entry in entries:
+            if entry.version == version:
+                return state_of(version, active_version=active, retired=entry.retired_at is not None), entry
+        raise NotFound(f"mix version {version!r} not found in plan {plan_id!r}")
+
+    def publish(self, plan: PlanView, request: MixIn, published_by: str | None = None) -> tuple[bool, dict[str, Any]]:
         """(created, body). Same version and content again: (False, the first body); other content: 409."""
         if len(request.assets) > self._settings.max_assets:
             raise PayloadTooLarge(
@@ -250,13 +345,14 @@ class MixCatalog:
                     content_hash=digest,
                     inputs=text.decode(),
                     solved={"published": doc, "numerics": solved.to_document()},
+                    published_by=published_by,
                 )
         except Conflict:
             # Another replica published the same version meanwhile: answer as a repeat would.
             raced = self._load(plan.plan_id, request.version)
             assert raced is not None
             return self._same_or_conflict(request.version, digest, raced)
-        self._remember(plan.plan_id, request.version, digest, solved, doc)
+        self._remember(plan.plan_id, request.version, digest, solved, doc, canonical)
         self._metrics.mixes.labels(plan.plan_id).inc()
         return True, doc
 
@@ -341,8 +437,5 @@ class AppState:
         return view
 
     def active_version(self, plan_id: str) -> str | None:
-        with self.db.reading() as s:
-            record = get_plan(s, plan_id)
-        if record is None:
-            raise NotFound(f"plan {plan_id!r} not found")
-        return record.active_version
+        """Read live (pages and reads; allocations use MixCatalog.view_in_force)."""
+        return self.mixes.active_version(plan_id)

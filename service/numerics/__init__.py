@@ -6,9 +6,15 @@ Public surface is ``__all__``; the submodules are private.
 """
 
 from service.numerics.errors import InputError
+from service.numerics.estimation import (
+    HistoryEstimate,
+    estimate_from_history,
+    history_matrix,
+)
 from service.numerics.exact import min_variance, tangency
 from service.numerics.frontier import Frontier, efficient_frontier
 from service.numerics.inputs import MixInputs, build_inputs
+from service.numerics.nearest_correlation import NearestCorrelation, nearest_correlation
 from service.numerics.numerical_routes import CrossCheck, cross_checks
 from service.numerics.portfolio import Portfolio
 from service.numerics.solved_mix import SolvedMix, solve_mix
@@ -26,4 +32,9 @@ __all__ = [
     "min_variance",
     "efficient_frontier",
     "cross_checks",
+    "HistoryEstimate",
+    "estimate_from_history",
+    "history_matrix",
+    "NearestCorrelation",
+    "nearest_correlation",
 ]

@@ -44,6 +44,7 @@ from service.numerics.risk import FactorRisk, Risk
 from service.numerics.warm_start import min_variance_start
 
 __all__ = [
+    "SPACINGS",
     "UNBOUNDED_TOP_FACTOR",
     "Frontier",
     "best_sharpe_on_frontier",
@@ -59,6 +60,8 @@ IndexArray = npt.NDArray[np.intp]
 #: minimum-variance return m0 to m0 + UNBOUNDED_TOP_FACTOR * (max(tangency return,
 #: max expected return) - m0).
 UNBOUNDED_TOP_FACTOR = 1.5
+#: How ``Frontier.sample`` may space its points.
+SPACINGS = ("return", "volatility")
 
 # Refactorise the free block after this many rank-one updates at the latest, and earlier
 # when the free rows of the reduced gradient drift above _REFACTOR_RTOL of their scale;
@@ -236,14 +239,56 @@ class Frontier:
         reach = max(float(m[-1]), float(np.max(inputs.expected_returns)))
         return float(m[0]) + UNBOUNDED_TOP_FACTOR * (reach - float(m[0]))
 
-    def sample(self, points: int, inputs: MixInputs) -> list[Portfolio]:
-        """``points`` portfolios at evenly spaced returns from minimum variance to the top
-        (for a frontier without a top, see UNBOUNDED_TOP_FACTOR)."""
+    def sample(self, points: int, inputs: MixInputs, spacing: str = "return") -> list[Portfolio]:
+        """``points`` portfolios from minimum variance to the top (for a frontier without a top,
+        see UNBOUNDED_TOP_FACTOR), evenly spaced in expected return (``spacing="return"``) or in
+        volatility (``spacing="volatility"``)."""
         if points < 1:
             raise ValueError(f"points must be >= 1, got {points}")
+        if spacing not in SPACINGS:
+            raise ValueError(f"spacing is one of {', '.join(SPACINGS)}, got {spacing!r}")
         low = float(self.corner_returns[0])
-        targets = np.linspace(low, self.top_return(inputs), points) if points > 1 else np.array([low])
+        if points == 1:
+            targets = np.array([low])
+        elif spacing == "return":
+            targets = np.linspace(low, self.top_return(inputs), points)
+        else:
+            targets = self._returns_at_volatilities(points, inputs)
         return [portfolio_from_weights(inputs, self.weights_at(float(m)), "frontier") for m in targets]
+
+    def corners(self, inputs: MixInputs) -> list[Portfolio]:
+        """The corner portfolios, minimum variance first. A frontier without a top ends in a ray
+        whose far end is not a corner, so it is left out."""
+        k = self.corner_returns.size - (1 if self.unbounded_above else 0)
+        return [portfolio_from_weights(inputs, self.corner_weights[i].copy(), "corner") for i in range(max(k, 1))]
+
+    def _returns_at_volatilities(self, points: int, inputs: MixInputs) -> FloatArray:
+        # Between nodes the weights are affine in the return, so the variance is a quadratic in
+        # the share t along the segment, A + 2 B t + C t^2, increasing on the efficient branch:
+        # each volatility is reached at the larger root, in closed form.
+        top = self.top_return(inputs)
+        inner = self.corner_returns[(self.corner_returns > self.corner_returns[0]) & (self.corner_returns < top)]
+        nodes = np.concatenate([self.corner_returns[:1], inner, [top]])
+        s = inputs.covariance
+        weights = np.vstack([self.weights_at(float(m)) for m in nodes])
+        variances = np.einsum("ij,jk,ik->i", weights, s, weights)
+        vols = np.sqrt(np.maximum(variances, 0.0))
+        # Rounding can make the volatility dip by an ulp right after minimum variance.
+        vols = np.maximum.accumulate(vols)
+        targets = np.linspace(vols[0], vols[-1], points)
+        out = np.empty(points)
+        for i, sigma in enumerate(targets):
+            k = min(max(int(np.searchsorted(vols, sigma, side="left")) - 1, 0), nodes.size - 2)
+            a, d = weights[k], weights[k + 1] - weights[k]
+            big_a, big_b, big_c = float(a @ s @ a), float(a @ s @ d), float(d @ s @ d)
+            gap = sigma * sigma - big_a
+            if big_c > 0.0:
+                t = (-big_b + math.sqrt(max(big_b * big_b + big_c * gap, 0.0))) / big_c
+            else:
+                t = gap / (2.0 * big_b) if big_b > 0.0 else 0.0
+            t = min(max(t, 0.0), 1.0)
+            out[i] = nodes[k] + t * (nodes[k + 1] - nodes[k])
+        return out
 
 
 def _single(w: FloatArray, mu: FloatArray) -> Frontier:

@@ -22,6 +22,7 @@ from service.store.records import (
     KeyRecord,
     LogBatch,
     LogStream,
+    MixLifecycle,
     MixRecord,
     PlanRecord,
 )
@@ -38,8 +39,11 @@ from service.store.repository import (
     latest_allocations,
     list_allocations,
     list_keys,
+    list_lifecycle,
+    lock_lifecycle,
+    record_activation,
+    record_retirement,
     revoke_key,
-    set_active_version,
     upsert_key,
 )
 from service.store.signed_heads import (
@@ -68,6 +72,7 @@ __all__ = [
     "KeyReservation",
     "LogBatch",
     "LogStream",
+    "MixLifecycle",
     "MixRecord",
     "PlanRecord",
     "SignedHead",
@@ -87,9 +92,12 @@ __all__ = [
     "list_keys",
     "load_public_key",
     "revoke_key",
+    "list_lifecycle",
+    "lock_lifecycle",
+    "record_activation",
+    "record_retirement",
     "secret_hash",
     "secret_matches",
-    "set_active_version",
     "upsert_key",
     "verify_chain",
 ]

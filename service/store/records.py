@@ -50,6 +50,21 @@ class MixRecord:
 
 
 @dataclass(frozen=True)
+class MixLifecycle:
+    """One version's place in its plan's lifecycle: when and by which key it was published,
+    activated and retired (None where that has not happened)."""
+
+    version: str
+    content_hash: str
+    published_at: datetime
+    published_by: str | None
+    activated_at: datetime | None
+    activated_by: str | None
+    retired_at: datetime | None
+    retired_by: str | None
+
+
+@dataclass(frozen=True)
 class IdempotencyCompletion:
     """What the writer stores into an Idempotency-Key reservation in the same transaction as
     the rows it guards, so that an answer is replayable exactly when it was logged."""

@@ -18,7 +18,13 @@ from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from service.store.errors import Conflict
-from service.store.records import VISIBLE, KeyRecord, MixRecord, PlanRecord
+from service.store.records import (
+    VISIBLE,
+    KeyRecord,
+    MixLifecycle,
+    MixRecord,
+    PlanRecord,
+)
 from service.store.schema import (
     Allocation,
     AllocationBatch,
@@ -187,6 +193,7 @@ def insert_mix(
     content_hash: str,
     inputs: dict[str, Any] | str,
     solved: dict[str, Any],
+    published_by: str | None = None,
 ) -> None:
     """``inputs`` may come as its JSON text already (sorted keys, as ``json_text`` writes it)."""
     _insert_new(
@@ -200,6 +207,7 @@ def insert_mix(
             inputs=inputs if isinstance(inputs, str) else json_text(inputs),
             solved=json_text(solved),
             created_at=utc_now(),
+            published_by=published_by,
         ),
     )
 
@@ -220,17 +228,76 @@ def get_mix(s: Session, plan_id: str, version: str) -> MixRecord | None:
     )
 
 
-def set_active_version(s: Session, plan_id: str, version: str) -> None:
-    """Point the plan at one of its published mixes.
+_LIFECYCLE_COLUMNS = (
+    Mix.version, Mix.content_hash, Mix.created_at, Mix.published_by,
+    Mix.activated_at, Mix.activated_by, Mix.retired_at, Mix.retired_by,
+)
 
-    Raises LookupError if the plan has no mix ``version`` (or the plan does not exist).
+
+def _lifecycle(row: Any) -> MixLifecycle:
+    return MixLifecycle(
+        version=row.version,
+        content_hash=row.content_hash,
+        published_at=row.created_at,
+        published_by=row.published_by,
+        activated_at=row.activated_at,
+        activated_by=row.activated_by,
+        retired_at=row.retired_at,
+        retired_by=row.retired_by,
+    )
+
+
+def list_lifecycle(s: Session, plan_id: str) -> list[MixLifecycle]:
+    """Every version of the plan, in the order they were published."""
+    rows = s.execute(
+        select(*_LIFECYCLE_COLUMNS).where(Mix.plan_id == plan_id).order_by(Mix.created_at, Mix.version)
+    ).all()
+    return [_lifecycle(row) for row in rows]
+
+
+def lock_lifecycle(s: Session, plan_id: str, version: str) -> tuple[str | None, MixLifecycle | None]:
+    """(the plan's active version, ``version``'s lifecycle or None), with the plan's row locked
+    until the transaction ends, so two activations (on any replicas) follow one another.
+
+    Raises LookupError when the plan does not exist. On SQLite the write transaction already
+    holds the database's write lock (BEGIN IMMEDIATE).
     """
-    published = s.execute(
-        select(Mix.version).where(Mix.plan_id == plan_id, Mix.version == version)
+    query = select(Plan.active_version).where(Plan.plan_id == plan_id)
+    if s.get_bind().dialect.name == "postgresql":
+        query = query.with_for_update()
+    active = s.execute(query).one_or_none()
+    if active is None:
+        raise LookupError(f"plan {plan_id!r} does not exist")
+    row = s.execute(
+        select(*_LIFECYCLE_COLUMNS).where(Mix.plan_id == plan_id, Mix.version == version)
     ).one_or_none()
-    if published is None:
-        raise LookupError(f"plan {plan_id!r} has no mix version {version!r}")
+    return active.active_version, None if row is None else _lifecycle(row)
+
+
+def record_activation(
+    s: Session, plan_id: str, version: str, *, retires: str | None, key_id: str, at: datetime
+) -> None:
+    """Make ``version`` the plan's active version and retire ``retires`` (its predecessor)."""
+    if retires is not None:
+        s.execute(
+            update(Mix)
+            .where(Mix.plan_id == plan_id, Mix.version == retires, Mix.retired_at.is_(None))
+            .values(retired_at=at, retired_by=key_id)
+        )
+    s.execute(
+        update(Mix)
+        .where(Mix.plan_id == plan_id, Mix.version == version)
+        .values(activated_at=at, activated_by=key_id)
+    )
     s.execute(update(Plan).where(Plan.plan_id == plan_id).values(active_version=version))
+
+
+def record_retirement(s: Session, plan_id: str, version: str, *, key_id: str, at: datetime) -> None:
+    s.execute(
+        update(Mix)
+        .where(Mix.plan_id == plan_id, Mix.version == version, Mix.retired_at.is_(None))
+        .values(retired_at=at, retired_by=key_id)
+    )
 
 
 def _visible() -> Any:

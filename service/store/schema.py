@@ -105,7 +105,8 @@ class ApiKey(Base):
 
 
 class Mix(Base):
-    """A published risky-mix version; rows are immutable once written."""
+    """A published risky-mix version; its content is immutable once written, only the lifecycle
+    columns are filled in later (each once)."""
 
     __tablename__ = "mixes"
 
@@ -117,6 +118,13 @@ class Mix(Base):
     inputs: Mapped[str] = mapped_column(Text)
     solved: Mapped[str] = mapped_column(Text)
     created_at: Mapped[datetime] = mapped_column(UtcDateTime, default=utc_now)
+    # The lifecycle (published -> active -> retired); the plan's active_version says which is in
+    # force. Key ids, not names: who did it is whoever held that key.
+    published_by: Mapped[str | None] = mapped_column(String(), nullable=True)
+    activated_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    activated_by: Mapped[str | None] = mapped_column(String(), nullable=True)
+    retired_at: Mapped[datetime | None] = mapped_column(UtcDateTime, nullable=True)
+    retired_by: Mapped[str | None] = mapped_column(String(), nullable=True)
 
 
 class Allocation(Base):

@@ -81,7 +81,7 @@ async def test_one_bad_member_fails_the_call_and_logs_nothing(world: World, new_
         assert r.headers["content-type"].startswith("application/problem+json")
         assert field in [e["field"] for e in r.json()["errors"]], (field, r.json())
     assert await checked(world, new_plan_id, keys) == 0
-    for body, status in (({"mix_version": DEMO_MIX["version"], "members": []}, 422), ({"mix_version": "nope", "members": [member(1)]}, 404),
+    for body, status in (({"mix_version": DEMO_MIX["version"], "members": []}, 422), ({"mix_version": "nope", "members": [member(1)]}, 409),
                          ({"members": [member(1)]}, 422), ({"mix_version": DEMO_MIX["version"], "members": [member(1)], "x": 1}, 422)):
         r = await world.client.post(url, json=body, headers=keys["portal"])
         assert r.status_code == status, r.text

@@ -67,7 +67,7 @@ async def test_failed_request_gives_its_key_up(world: World, new_plan_id: str) -
     url = f"/v1/plans/{new_plan_id}/allocations"
     headers = keys["portal"] | {"Idempotency-Key": '"fix-and-retry"'}
     bad = await world.client.post(url, json=BODY | {"mix_version": "not-published"}, headers=headers)
-    assert bad.status_code == 404
+    assert bad.status_code == 409  # not the version in force
     good = await world.client.post(url, json=BODY, headers=headers)
     assert good.status_code == 201 and await logged(world, new_plan_id, keys) == 1
 

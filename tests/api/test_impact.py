@@ -94,3 +94,14 @@ async def test_impact_refusals(world: World, new_plan_id: str) -> None:
     assert r.status_code == 404
     r = await world.client.post(f"{base}/{DEMO_MIX['version']}/impact", headers=keys["portal"])
     assert r.status_code == 403
+
+
+async def test_a_retired_candidate_is_refused(world: World, new_plan_id: str) -> None:
+    keys = await world.plan(new_plan_id)
+    await world.publish(new_plan_id, keys)
+    await world.publish(new_plan_id, keys, candidate_mix(), activate=False)
+    base = f"/v1/plans/{new_plan_id}/mixes"
+    assert (await world.client.post(f"{base}/2027-q1/retire", headers=keys["committee"])).status_code == 200
+    r = await world.client.post(f"{base}/2027-q1/impact", headers=keys["committee"])
+    assert r.status_code == 409 and r.json()["errors"][0]["field"] == "version"
+    assert r.json()["active_version"] == DEMO_MIX["version"]

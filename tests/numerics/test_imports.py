@@ -8,7 +8,8 @@ import sys
 import service.numerics as numerics
 
 PUBLIC = {"InputError", "MixInputs", "build_inputs", "Portfolio", "CrossCheck", "Frontier", "SolvedMix",
-          "solve_mix", "tangency", "min_variance", "efficient_frontier", "cross_checks"}
+          "solve_mix", "tangency", "min_variance", "efficient_frontier", "cross_checks",
+          "HistoryEstimate", "estimate_from_history", "history_matrix", "NearestCorrelation", "nearest_correlation"}
 
 
 def test_public_names_are_exactly_the_interface() -> None:

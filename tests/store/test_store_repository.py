@@ -23,10 +23,13 @@ from service.store import (
     insert_plan,
     list_allocations,
     list_keys,
+    list_lifecycle,
+    lock_lifecycle,
+    record_activation,
+    record_retirement,
     revoke_key,
     secret_hash,
     secret_matches,
-    set_active_version,
     upsert_key,
 )
 from tests.store.conftest import AppendRows
@@ -42,7 +45,9 @@ def test_public_names_are_exactly_the_interface() -> None:
             "GENESIS_HASH", "HeadSigner", "SignedHead", "check_against_head", "current_head", "load_public_key", "BadRow", "ChainReport", "ChainWriter", "Conflict", "Database", "Finished", "LogStream", "IdempotencyCompletion", "IdempotencyLeaseLost", "IdempotencyRecord", "KeyRelease", "KeyReservation", "get_frontier", "insert_frontier",
             "KeyRecord", "LogBatch", "MixRecord", "PlanRecord", "get_allocation", "get_key",
             "get_mix", "get_plan", "insert_key", "insert_mix", "insert_plan",
-            "latest_allocations", "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches", "set_active_version",
+            "latest_allocations", "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches",
+            "MixLifecycle", "list_lifecycle", "lock_lifecycle", "record_activation",
+            "record_retirement",
             "upsert_key", "verify_chain",
         ]
     )
@@ -191,13 +196,30 @@ def test_mix_round_trip_conflict_and_activation(database: Database, plan_id: str
     assert mix.created_at.tzinfo is not None
 
     with database.writing() as s:
-        set_active_version(s, plan_id, "2026-q4")
+        insert_mix(s, plan_id=plan_id, version="2027-q1", content_hash="e" * 64,
+                   inputs=INPUTS, solved=SOLVED, published_by="key-a")
+    at = datetime(2026, 12, 2, 3, 0, tzinfo=UTC)
+    with database.writing() as s:
+        assert lock_lifecycle(s, plan_id, "2026-q4")[0] is None
+        record_activation(s, plan_id, "2026-q4", retires=None, key_id="key-b", at=at)
+    with database.writing() as s:
+        active, q1 = lock_lifecycle(s, plan_id, "2027-q1")
+        assert active == "2026-q4" and q1 is not None and q1.published_by == "key-a"
+        record_activation(s, plan_id, "2027-q1", retires="2026-q4", key_id="key-c", at=at + timedelta(hours=1))
     with database.reading() as s:
         plan = get_plan(s, plan_id)
-    assert plan is not None and plan.active_version == "2026-q4"
-
-    with database.writing() as s, pytest.raises(LookupError, match="2027-q1"):
-        set_active_version(s, plan_id, "2027-q1")
+        q4, q1 = list_lifecycle(s, plan_id)
+    assert plan is not None and plan.active_version == "2027-q1"
+    assert (q4.version, q4.activated_by, q4.activated_at, q4.retired_by) == ("2026-q4", "key-b", at, "key-c")
+    assert (q1.activated_by, q1.retired_at) == ("key-c", None)
+    with database.writing() as s:
+        record_retirement(s, plan_id, "2026-q4", key_id="key-d", at=at + timedelta(hours=2))
+    with database.reading() as s:
+        assert list_lifecycle(s, plan_id)[0].retired_by == "key-c"  # retired once, never again
+    with database.writing() as s:
+        assert lock_lifecycle(s, plan_id, "2028-q1")[1] is None
+        with pytest.raises(LookupError):
+            lock_lifecycle(s, "plan-missing", "2026-q4")
 
 
 def test_allocation_reads(database: Database, plan_id: str, append_rows: AppendRows) -> None:
