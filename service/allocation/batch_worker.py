@@ -100,19 +100,18 @@ def serve_batches(conn: Connection) -> None:
             continue
         try:
             d = prepared.decisions
-            answers: list[str] = []
+            conn.send(("head", prepared.batch_head()))
             for start in range(0, prepared.size, STREAM_CHUNK):
                 rows = slice(start, start + STREAM_CHUNK)
-                conn.send(("rows", list(d.allocation_ids[rows]), list(d.member_ids[rows]), prepared.records(rows)))
-                # Each chunk's answers are written while the log writer inserts its records.
-                answers.append(",".join(prepared.answers(rows, inline_disclosures=False)))
-            body = prepared.batch_body(answers)
+                # Each chunk's answers travel with its records, so that the answer is assembled
+                # while the log writer inserts, not rendered and copied after the last row.
+                results = ",".join(prepared.answers(rows, inline_disclosures=False)).encode()
+                conn.send(("rows", list(d.allocation_ids[rows]), list(d.member_ids[rows]), prepared.records(rows), results))
         except Exception as error:
             conn.send(("refused", Refusal.of(error)))
             continue
-        conn.send(("answer",))
-        conn.send_bytes(body)
-        del prepared, body
+        conn.send(("done",))
+        del prepared
         gc.collect()
 
 

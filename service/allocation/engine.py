@@ -41,6 +41,9 @@ def line_for(view: MixTerms, policy: Policy) -> AllocationLine:
     )
 
 
+BATCH_TAIL = b"]}"
+
+
 @dataclass(frozen=True)
 class Allocations:
     """Every member of a request decided; texts are rendered on demand, a range of rows at a time."""
@@ -58,11 +61,10 @@ class Allocations:
     def answers(self, rows: slice = slice(None), *, inline_disclosures: bool) -> list[str]:
         return answer_texts(self.context, self.decisions.rows(rows), inline_disclosures=inline_disclosures)
 
-    def batch_body(self, results: Sequence[str]) -> bytes:
-        """A batch's answer: what all results share, then the results (`answers` of consecutive
-        row ranges, each joined by commas) in order."""
-        head = batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))
-        return head + ",".join(results).encode() + b"]}"
+    def batch_head(self) -> bytes:
+        """The opening of a batch's answer, up to its results: what all results share. The
+        answer is `batch_head() + b",".join(results of consecutive row ranges) + BATCH_TAIL`."""
+        return batch_head(self.context, self.size, float(self.decisions.risky_fraction.max(initial=0.0)))
 
 
 def decide(

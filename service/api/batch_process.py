@@ -18,7 +18,7 @@ member is checked and the Idempotency-Key is claimed:
     ("decide", setting)                 ->   every member read, checked, decided
                                         <-   ("decided", n) | ("refused", ...)
     ("write",)                          ->   records in chunks
-                                        <-   ("rows", ids, members, records) ... ("answer",) + bytes
+                                        <-   ("head", bytes), ("rows", ids, members, records, results) ... ("done",)
     ("cancel",) at any point ends the conversation; the child waits for the next batch.
 """
 
@@ -33,6 +33,7 @@ from typing import Any
 
 from service.allocation import Setting
 from service.allocation.batch_worker import serve_batches
+from service.allocation.engine import BATCH_TAIL
 from service.store import Finished, IdempotencyCompletion
 
 log = logging.getLogger("mixline.batch")
@@ -74,16 +75,25 @@ class BatchConversation:
         chunk of records as it arrives and, last, Finished with `completion(answer)`. The answer
         body is then `self.body`. The writer thread reads the pipe itself: no thread between."""
         self._conn.send(("write",))
+        head = b""
+        results: list[bytes] = []
 
         def pull(timeout: float) -> Any:
-            if not self._conn.poll(timeout):
-                return None
-            message = self._answer()
-            if message[0] == "rows":
-                return message[1], message[2], message[3]
-            self.body = self._conn.recv_bytes()
-            self._open = False
-            return Finished(completion(self.body))
+            nonlocal head
+            while True:
+                if not self._conn.poll(timeout):
+                    return None
+                message = self._answer()
+                if message[0] == "head":
+                    head = message[1]
+                    continue
+                if message[0] == "rows":
+                    results.append(message[4])
+                    return message[1], message[2], message[3]
+                self.body = head + b",".join(results) + BATCH_TAIL
+                results.clear()
+                self._open = False
+                return Finished(completion(self.body))
 
         return pull
 
