@@ -205,7 +205,7 @@ def over_http(repeats: int, singles: int) -> None:
                     status, answer = call(server.base, "POST", "/v1/plans/bench/mixes", keys["committee"], raw)
                     publish.append(time.perf_counter() - start)
                     assert status == 201, answer[:300]
-                    status, answer = call(server.base, "GET", f"/v1/plans/bench/mixes/{version}/frontier?points=100",
+                    status, answer = call(server.base, "GET", f"/v1/plans/bench/mixes/{version}/frontier?points=100&corners=false",
                                           keys["committee"])
                     ready.append(time.perf_counter() - start)
                     assert status == 200, answer[:300]
@@ -214,7 +214,7 @@ def over_http(repeats: int, singles: int) -> None:
                     again.append(time.perf_counter() - start)
                     assert status == 200
                     start = time.perf_counter()
-                    call(server.base, "GET", f"/v1/plans/bench/mixes/{version}/frontier?points=100", keys["committee"])
+                    call(server.base, "GET", f"/v1/plans/bench/mixes/{version}/frontier?points=100&corners=false", keys["committee"])
                     known.append(time.perf_counter() - start)
                 ms = lambda xs: ", ".join(f"{1e3 * x:.0f}" for x in xs)
                 print(f"{form} N={n} k={k} ({size / 1e6:.1f} MB body): publish answered {ms(publish)} ms; "
@@ -258,7 +258,7 @@ def during_frontier(server: Server, keys: dict[str, str], seconds: int, workdir:
                 start = time.perf_counter()
                 call(server.base, "POST", "/v1/plans/bench/mixes", keys["committee"], raw)
                 answered = time.perf_counter()
-                call(server.base, "GET", f"/v1/plans/bench/mixes/busy-{pause}-{r}/frontier?points=5", keys["committee"])
+                call(server.base, "GET", f"/v1/plans/bench/mixes/busy-{pause}-{r}/frontier?points=5&corners=false", keys["committee"])
                 publishing.append(answered - start)
                 solving.append(time.perf_counter() - answered)
                 stop.wait(pause)

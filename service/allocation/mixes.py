@@ -249,14 +249,20 @@ class MixView(MixTerms):
 _KIND_ORDER = {"min_variance": 0, "tangency": 1, "corner": 2, "spaced": 3}
 
 
-def frontier_document(view: MixView, frontier: Frontier, points: int, spacing: str = "return") -> dict[str, Any]:
+def frontier_document(
+    view: MixView, frontier: Frontier, points: int, spacing: str = "return", *, corners: bool = True
+) -> dict[str, Any]:
     """``points`` frontier portfolios evenly spaced in return or volatility, plus every corner
-    portfolio and the tangency, sorted by expected return, each with its ``kind``."""
+    portfolio (unless ``corners`` is false: a 2,000-asset mix has thousands) and the tangency,
+    sorted by expected return, each with its ``kind``."""
     solved = view.solved
     codes = view.codes
     inputs = solved.inputs
-    labelled: list[tuple[str, Portfolio]] = [("corner", p) for p in frontier.corners(inputs)]
-    labelled[0] = ("min_variance", labelled[0][1])
+    if corners:
+        labelled: list[tuple[str, Portfolio]] = [("corner", p) for p in frontier.corners(inputs)]
+        labelled[0] = ("min_variance", labelled[0][1])
+    else:
+        labelled = [("min_variance", solved.min_variance)]
     labelled.append(("tangency", solved.tangency))
     scale = max(1.0, float(np.max(np.abs(inputs.expected_returns))))
     every = labelled + [("spaced", p) for p in frontier.sample(points, inputs, spacing)]

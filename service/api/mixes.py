@@ -162,6 +162,7 @@ async def read_frontier(
     points: Annotated[int, Query(ge=2, description="how many evenly spaced frontier points (corners and the tangency are added)")] = 25,
     spacing: Annotated[Literal["return", "volatility"], Query(description="space the points evenly in expected return or in volatility")] = "return",
     allocation_id: Annotated[str | None, Query(max_length=128, description="mark this logged allocation's split")] = None,
+    corners: Annotated[bool, Query(description="include every corner portfolio (thousands for a large capped mix)")] = True,
 ) -> Response:
     caller.require(plan_id, *READERS)
     media = choose(request.headers.get("accept"), FRONTIER_MEDIA)
@@ -178,7 +179,8 @@ async def read_frontier(
         chart = frontier_chart(view, frontier, f"Risky mix {version}: efficient frontier", member)
         svg = await run_in_threadpool(frontier_svg, chart)
         return Response(svg, media_type="image/svg+xml")
-    doc = frontier_document(view, frontier, points, spacing)
+    # Thousands of weight vectors for a large mix: written off the event loop.
+    doc = await run_in_threadpool(lambda: frontier_document(view, frontier, points, spacing, corners=corners))
     if media == "text/csv":
         return Response(frontier_csv(doc), media_type="text/csv; charset=utf-8",
                         headers={"Content-Disposition": f'inline; filename="frontier-{version}.csv"'})

@@ -58,6 +58,19 @@ async def test_points_hold_the_corners_and_the_tangency(world: World, new_plan_i
         assert_allclose(sum(p["weights"].values()), 1.0, atol=1e-12)
 
 
+async def test_corners_can_be_left_out(world: World, new_plan_id: str) -> None:
+    keys, _ = await setup(world, new_plan_id)
+    with_corners = (await frontier(world, new_plan_id, keys, points=9)).json()["points"]
+    doc = (await frontier(world, new_plan_id, keys, points=9, corners="false")).json()
+    kinds = [p["kind"] for p in doc["points"]]
+    assert "corner" not in kinds and kinds[0] == "min_variance" and kinds.count("tangency") == 1
+    assert len(kinds) <= 11 < len(with_corners) + 1  # nine spaced points, the two labelled ones
+    # The spaced points are the same portfolios either way (one sampling of one frontier); with
+    # corners, a spaced point that falls on a corner is shown as the corner.
+    alone = [p for p in doc["points"] if p["kind"] == "spaced"]
+    assert all(p in alone for p in with_corners if p["kind"] == "spaced")
+
+
 async def test_points_spaced_by_volatility(world: World, new_plan_id: str) -> None:
     keys, _ = await setup(world, new_plan_id)
     doc = (await frontier(world, new_plan_id, keys, points=11, spacing="volatility")).json()
