@@ -381,7 +381,7 @@ class ChainWriter:
     # Rows of other requests are written between a stream's transactions, each of at most this
     # many rows (a few milliseconds), so that they wait for at most one of them. PostgreSQL pays
     # an fsync per commit and lets other plans' requests commit meanwhile: larger pieces there.
-    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 1024, "postgresql": 4096}
+    STREAM_ROWS_PER_TRANSACTION = {"sqlite": 512, "postgresql": 4096}
     STREAM_POLL_SECONDS = 0.002
 
     def _write_stream(self, job: _Job, in_flight: list[_Job]) -> bool:
