@@ -13,6 +13,8 @@ server default, READ COMMITTED.
 
 from __future__ import annotations
 
+import contextlib
+import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
@@ -104,7 +106,10 @@ class Database:
             self._read_bind = self.engine.execution_options(
                 isolation_level="REPEATABLE READ", postgresql_readonly=True
             )
-        self.writer = ChainWriter(self.engine)
+        # SQLite has one write lock per file; the writers of this process queue for it on a
+        # Python lock instead (see ChainWriter), which hands it over without sleeping.
+        self._sqlite_write_lock = threading.RLock() if self.dialect == "sqlite" else None
+        self.writer = ChainWriter(self.engine, sqlite_write_lock=self._sqlite_write_lock)
 
     def __repr__(self) -> str:
         return f"Database({self.engine.url.render_as_string(hide_password=True)!r})"
@@ -137,7 +142,8 @@ class Database:
     @contextmanager
     def writing(self) -> Iterator[Session]:
         """A short write transaction: commits on success, rolls back on an exception."""
-        with Session(self._write_bind, expire_on_commit=False) as session, session.begin():
+        held = self._sqlite_write_lock if self._sqlite_write_lock is not None else contextlib.nullcontext()
+        with held, Session(self._write_bind, expire_on_commit=False) as session, session.begin():
             yield session
 
     def start(self) -> None:

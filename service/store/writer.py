@@ -19,6 +19,7 @@ replicas sharing one database still build one consistent chain per plan.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import queue
@@ -180,8 +181,14 @@ class ChainWriter:
     # After a failed connect, jobs fail at once for this long before the next attempt.
     RECONNECT_PAUSE_SECONDS = 0.5
 
-    def __init__(self, engine: Engine, *, max_group_rows: int = 50_000) -> None:
+    def __init__(
+        self, engine: Engine, *, max_group_rows: int = 50_000, sqlite_write_lock: threading.RLock | None = None
+    ) -> None:
         self._engine = engine
+        # SQLite: the process's other writers (Database.writing) take this lock too, so that
+        # the log writer waits for them on a lock that wakes it at once, not in SQLite's busy
+        # handler, which sleeps 1, 2, 5, 10, 15, 20, 25 ms ... between tries.
+        self._sqlite_lock = sqlite_write_lock if sqlite_write_lock is not None else threading.RLock()
         self._dialect = engine.dialect.name
         self._max_group_rows = max_group_rows
         self._queue: queue.SimpleQueue[Any] = queue.SimpleQueue()
@@ -472,28 +479,35 @@ class ChainWriter:
         """Record a stream's batch (opening) or move it to `state`, in one transaction."""
         dbapi = self._checkout().driver_connection
         p = "?" if self._dialect == "sqlite" else "%s"
+        held = self._sqlite_lock if self._dialect == "sqlite" else contextlib.nullcontext()
         try:
-            if self._dialect == "sqlite":
-                dbapi.execute("BEGIN IMMEDIATE")
-            cursor = dbapi.cursor()
-            if opening:
-                cursor.execute(
-                    f"INSERT INTO allocation_batches (batch_id, plan_id, rows, state, created_at) "
-                    f"VALUES ({p}, {p}, {p}, {p}, {p})",
-                    (stream.batch_id, stream.plan_id, stream.size, state, stream.created_at),
-                )
-            else:
-                cursor.execute(
-                    f"UPDATE allocation_batches SET state = {p} WHERE batch_id = {p}", (state, stream.batch_id)
-                )
-            if completes is not None:
-                # The lease check as for any answer: one whose reservation was taken over
-                # leaves the batch invisible.
-                complete(cursor, [completion_parameters(completes)], p)
-            dbapi.commit()
+            with held:
+                self._mark_batch(dbapi, stream, state, completes, p, opening)
         except BaseException:
             self._rollback(dbapi)
             raise
+
+    def _mark_batch(
+        self, dbapi: Any, stream: LogStream, state: str, completes: IdempotencyCompletion | None, p: str, opening: bool
+    ) -> None:
+        if self._dialect == "sqlite":
+            dbapi.execute("BEGIN IMMEDIATE")
+        cursor = dbapi.cursor()
+        if opening:
+            cursor.execute(
+                f"INSERT INTO allocation_batches (batch_id, plan_id, rows, state, created_at) "
+                f"VALUES ({p}, {p}, {p}, {p}, {p})",
+                (stream.batch_id, stream.plan_id, stream.size, state, stream.created_at),
+            )
+        else:
+            cursor.execute(
+                f"UPDATE allocation_batches SET state = {p} WHERE batch_id = {p}", (state, stream.batch_id)
+            )
+        if completes is not None:
+            # The lease check as for any answer: one whose reservation was taken over
+            # leaves the batch invisible.
+            complete(cursor, [completion_parameters(completes)], p)
+        dbapi.commit()
 
     def _write_group(self, group: list[_Job]) -> None:
         if not group:
@@ -531,7 +545,8 @@ class ChainWriter:
         driver_error = self._engine.dialect.loaded_dbapi.Error
         try:
             if self._dialect == "sqlite":
-                self._write_sqlite(dbapi, jobs)
+                with self._sqlite_lock:
+                    self._write_sqlite(dbapi, jobs)
             else:
                 self._write_postgresql(dbapi, jobs)
         except driver_error as error:
