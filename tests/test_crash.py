@@ -43,10 +43,10 @@ def test_kill_nine_under_load_loses_no_acknowledged_allocation(db_url: str, tmp_
         assert call(server.base, "POST", f"/v1/plans/{plan}/mixes/{DEMO_MIX['version']}/activate", keys["committee"]).status_code == 200
         acknowledged: dict[str, bytes] = {}
         checked: set[str] = set()
+        lock = threading.Lock()
         unanswered_batches: list[list[str]] = []
         for round_ in range(ROUNDS):
             stop = threading.Event()
-            lock = threading.Lock()
             base = server.base
 
             def singles(t: int, base: str = base, stop: threading.Event = stop, round_: int = round_) -> None:
