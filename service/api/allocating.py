@@ -10,7 +10,6 @@ a LogStream, chunk by chunk, made visible in one step.
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Awaitable
 from concurrent.futures import Future
 
 import orjson
@@ -77,14 +76,10 @@ async def allocate_batch(
     return raw_json_response(payload, 201)
 
 
-async def _log(
-    state: AppState, owned: idempotency.Claim | None, committed: Future[None], feeding: Awaitable[bytes] | None = None
-) -> bytes:
+async def _log(state: AppState, owned: idempotency.Claim | None, committed: Future[None]) -> None:
     """Wait until the rows are committed: no answer leaves before its log rows exist."""
     try:
-        payload = b"" if feeding is None else await feeding
         await asyncio.wrap_future(committed)
-        return payload
     except BaseException:
         if owned is not None:
             await idempotency.give_up(state, owned)

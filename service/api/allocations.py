@@ -15,6 +15,7 @@ from service.store import get_allocation, list_allocations
 from . import idempotency
 from .allocating import allocate_batch, allocate_one, rendered
 from .auth import Caller
+from .bodies import request_body_schema
 from .deps import CallerDep, StateDep
 from .errors import NotFound
 from .responses import AUTHED, problems, raw_json_response
@@ -28,14 +29,7 @@ READERS = ("portal",)
 
 def _documented(body: str) -> dict[str, object]:
     """The OpenAPI of a route that reads its own key, Idempotency-Key and body (see below)."""
-    return {
-        "parameters": [idempotency.HEADER_PARAMETER],
-        "security": [{"HTTPBearer": []}],
-        "requestBody": {
-            "required": True,
-            "content": {"application/json": {"schema": {"$ref": f"#/components/schemas/{body}"}}},
-        },
-    }
+    return {"parameters": [idempotency.HEADER_PARAMETER], "security": [{"HTTPBearer": []}], **request_body_schema(body)}
 
 
 # The two allocation routes take only their path parameter: FastAPI's dependency resolution

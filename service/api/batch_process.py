@@ -116,10 +116,6 @@ class BatchProcess:
         self._process: Any = None
         self._conn: Connection | None = None
 
-    def start(self) -> None:
-        with self._lock:
-            self._ensure()
-
     def _ensure(self) -> Connection:
         if self._process is None or not self._process.is_alive() or self._conn is None:
             context = multiprocessing.get_context("spawn")
