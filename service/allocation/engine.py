@@ -152,11 +152,21 @@ def allocate_each(
     refused: dict[int, list[FieldIssue]] = {}
     for issue in issues:
         refused.setdefault(issue.index, []).append(issue)
+    decided, good = decide_apart(members, on, new_ids, refused)
+    return Allocations(on.context(), decided), good, refused
+
+
+def decide_apart(
+    members: Members, on: Setting, new_ids: Callable[[int], list[str]], refused: dict[int, list[FieldIssue]]
+) -> tuple[Decisions, list[int]]:
+    """`decide` for the members not in `refused`, each independent of the others: a member no
+    risky fraction satisfies is added to `refused` (by position) and the rest decided. Returns
+    the decisions and the positions they are for."""
     while True:
         good = [i for i in range(members.size) if i not in refused]
         chosen = members if len(good) == members.size else members.rows(good)
         try:
-            return Allocations(on.context(), decide(chosen, on.view, on.policy, new_ids, batch_field)), good, refused
+            return decide(chosen, on.view, on.policy, new_ids, batch_field), good
         except MemberErrors as impossible:
             # Rare (a loss bound even the safe holding fails): set those apart and decide the rest.
             for issue in impossible.issues:

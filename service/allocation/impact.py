@@ -16,8 +16,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from .engine import Setting, decide
-from .issues import MemberErrors, batch_field
+from .engine import Setting, decide_apart
+from .issues import FieldIssue
 from .members import NOT_HELD, Members
 from .preferences import KIND_NAMES, LIMIT_NAMES, MAX_LOSS, PreferenceColumns
 
@@ -96,18 +96,9 @@ def _counts(bounds: Sequence[str | None]) -> dict[str, int]:
 def impact(records: Sequence[Mapping[str, Any]], candidate: Setting) -> Impact:
     """Every record's request recomputed under `candidate` (its view, the plan's policy)."""
     members, before, logged_bounds = members_from_records(records)
-    keep = list(range(members.size))
-    refused = 0
-    while True:
-        chosen = members if len(keep) == members.size else members.rows(keep)
-        try:
-            d = decide(chosen, candidate.view, candidate.policy, lambda n: [""] * n, batch_field)
-            break
-        except MemberErrors as impossible:
-            # A loss bound the candidate's line cannot meet at all: counted, left out of the moves.
-            gone = {keep[issue.index] for issue in impossible.issues}
-            refused += len(gone)
-            keep = [i for i in keep if i not in gone]
+    # A loss bound the candidate's line cannot meet at all: counted, left out of the moves.
+    refused: dict[int, list[FieldIssue]] = {}
+    d, keep = decide_apart(members, candidate, lambda n: [""] * n, refused)
     kept_before = before[keep]
     after_bounds = [LIMIT_NAMES[c] for c in d.limited.tolist()]
     return Impact(
@@ -118,5 +109,5 @@ def impact(records: Sequence[Mapping[str, Any]], candidate: Setting) -> Impact:
         member_ids=list(d.member_ids),
         limited_before=_counts([logged_bounds[i] for i in keep]),
         limited_after=_counts(after_bounds),
-        refused=refused,
+        refused=len(refused),
     )
