@@ -324,14 +324,19 @@ class ChainWriter:
             group, carried, stopping = self._gather(first, recent_jobs, recent_write_seconds)
             in_flight[:] = group if carried is None else [*group, carried]
             recent_jobs = len(group)
-            started = time.monotonic()
-            written = [j for j in group if j.future.set_running_or_notify_cancel()]
-            self._write_group(written)
-            recent_write_seconds = time.monotonic() - started
-            if self.group_written is not None and written:
-                self._report(len(written), sum(j.size for j in written), recent_write_seconds)
+            recent_write_seconds = self._write_reported(group)
             if stopping:
                 return
+
+    def _write_reported(self, group: list[_Job]) -> float:
+        """Write the group's jobs that were not cancelled, report it, return the seconds it took."""
+        started = time.monotonic()
+        written = [j for j in group if j.future.set_running_or_notify_cancel()]
+        self._write_group(written)
+        seconds = time.monotonic() - started
+        if self.group_written is not None and written:
+            self._report(len(written), sum(j.size for j in written), seconds)
+        return seconds
 
     def _report(self, jobs: int, rows: int, seconds: float) -> None:
         callback = self.group_written
@@ -465,12 +470,8 @@ class ChainWriter:
                 group.append(waiting)
         if group:
             in_flight.extend(group)
-            started = time.monotonic()
-            written = [j for j in group if j.future.set_running_or_notify_cancel()]
-            self._write_group(written)
+            self._write_reported(group)
             del in_flight[1:]
-            if self.group_written is not None and written:
-                self._report(len(written), sum(j.size for j in written), time.monotonic() - started)
         return stopping
 
     def _batch_state(
