@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-import queue
 import secrets
+import time
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -118,9 +118,9 @@ class LogStream:
     Idempotency-Key answer, if any). A batch that fails is marked abandoned: its rows stay in
     the chain, which never forgets, but no read returns them.
 
-    The producer calls ``put`` until ``size`` rows were given, then ``finish``; or ``fail``. Or
-    the writer pulls: ``pull(timeout)`` returns the next (allocation_ids, member_ids, bodies), a
-    ``Finished``, or None when nothing came within ``timeout`` (it may raise to abandon).
+    The writer pulls: ``pull(timeout)`` returns the next (allocation_ids, member_ids, bodies), a
+    ``Finished`` after the last rows, or None when nothing came within ``timeout``; it raises to
+    abandon the batch. A producer quiet for ``wait_seconds`` abandons it too.
     """
 
     def __init__(
@@ -130,8 +130,8 @@ class LogStream:
         created_at: str,
         size: int,
         *,
+        pull: Callable[[float], Any],
         wait_seconds: float = 300.0,
-        pull: Callable[[float], Any] | None = None,
     ) -> None:
         self.plan_id = plan_id
         self.mix_version = mix_version
@@ -139,36 +139,19 @@ class LogStream:
         self.size = size
         self.batch_id = f"ab_{secrets.token_hex(12)}"
         self._wait = wait_seconds
-        self._chunks: queue.SimpleQueue[Any] = queue.SimpleQueue()
         self._pull = pull
         self._seen = 0
-
-    def put(self, allocation_ids: Sequence[str], member_ids: Sequence[str], bodies: Sequence[str]) -> None:
-        if not len(allocation_ids) == len(member_ids) == len(bodies):
-            raise ValueError("a chunk's allocation_ids, member_ids and bodies must have one length")
-        self._chunks.put((allocation_ids, member_ids, bodies))
-
-    def fail(self, error: BaseException) -> None:
-        self._chunks.put(error)
-
-    def finish(self, completes: IdempotencyCompletion | None = None) -> None:
-        """After the last rows: the writer then makes the batch visible (with what it completes)."""
-        self._chunks.put(Finished(completes))
+        self._last = time.monotonic()
 
     def next_chunk(self, timeout: float) -> LogBatch | Finished | None:
         """The next chunk as a LogBatch, the finish, or None if nothing came within ``timeout``.
         Raises the producer's error, or TimeoutError when the producer went quiet for too long."""
-        if self._pull is not None:
-            chunk = self._pull(timeout)
-            if chunk is None:
-                return None
-        else:
-            try:
-                chunk = self._chunks.get(timeout=timeout)
-            except queue.Empty:
-                return None
-        if isinstance(chunk, BaseException):
-            raise chunk
+        chunk = self._pull(timeout)
+        if chunk is None:
+            if time.monotonic() - self._last > self._wait:
+                raise TimeoutError(f"no rows for {self._wait} s; the batch is abandoned")
+            return None
+        self._last = time.monotonic()
         if isinstance(chunk, Finished):
             if self._seen != self.size:
                 raise ValueError(f"stream finished after {self._seen} of {self.size} rows")
@@ -181,11 +164,9 @@ class LogStream:
         self._seen += len(ids)
         if self._seen > self.size:
             raise ValueError(f"stream announced {self.size} rows and sent {self._seen}")
+        if not len(ids) == len(members) == len(bodies):
+            raise ValueError("a chunk's allocation_ids, member_ids and bodies must have one length")
         return LogBatch(self.plan_id, self.mix_version, self.created_at, ids, members, bodies, batch_id=self.batch_id)
-
-    @property
-    def wait_seconds(self) -> float:
-        return self._wait
 
 
 @dataclass(frozen=True)
