@@ -12,8 +12,11 @@ import numpy as np
 import orjson
 
 from .disclosures import disclosures_for
-from .money import money_columns, number_columns
-from .records import LIMIT_TEXTS, Context, Decisions
+from .explanations import explanation_texts
+from .members import NOT_HELD, SAFE
+from .money import money_columns, number_columns, numbers
+from .preferences import GLIDE_PATH
+from .records import LIMIT_TEXTS, SOURCE_TEXTS, Context, Decisions
 
 
 def _pair_texts(a: list[str], b: list[str]) -> list[str]:
@@ -27,6 +30,48 @@ def _by_asset_texts(codes: tuple[str, ...], flat: list[str]) -> list[str]:
     # Codes are letters, digits and . _ - (the mix schema's pattern): no braces to escape.
     template = "{{" + ",".join(f'{orjson.dumps(c).decode()}:"{{}}"' for c in codes) + "}}"
     return [template.format(*flat[i : i + k]) for i in range(0, len(flat), k)]
+
+
+def _circumstance_texts(ctx: Context, d: Decisions) -> list[str]:
+    """What only some members sent or get: years to retirement, income and the human capital it
+    comes to, holdings by asset and the trades (null within the rebalancing band)."""
+    n = d.size
+    out = [""] * n
+    given = ~np.isnan(d.years)
+    if given.any():
+        for i, text in zip(np.flatnonzero(given).tolist(), numbers(d.years[given]), strict=True):
+            out[i] += f',"years_to_retirement":{text}'
+    earning = np.not_equal(d.income, NOT_HELD)
+    if earning.any():
+        rows = np.flatnonzero(earning)
+        counted = np.not_equal(d.human_capital[rows], NOT_HELD)
+        annual, value = money_columns(ctx.currency, d.income[rows], np.where(counted, d.human_capital[rows], 0))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = d.human_capital[rows] / d.amount[rows].astype(np.float64)
+        (growth,) = number_columns(d.income_growth[rows])
+        ratios = numbers(np.where(np.isfinite(ratio), ratio, np.nan))
+        for j, i in enumerate(rows.tolist()):
+            out[i] += f',"income":{{"annual":"{annual[j]}","growth":{growth[j]}}}'
+            if counted[j]:
+                out[i] += f',"human_capital":{{"value":"{value[j]}","ratio_to_account":{ratios[j]}}}'
+    if d.itemised.any():
+        rows = np.flatnonzero(d.itemised)
+        names = [*ctx.codes, SAFE]
+        width = len(names)
+        held = money_columns(ctx.currency, d.held_assets[rows].reshape(-1))[0]
+        flat = d.trades[rows].reshape(-1)
+        # Signed: buys with "+", sales with "-", nothing to do as plain zero.
+        moves = ["+" + t if buy else t for t, buy in zip(money_columns(ctx.currency, flat)[0], (flat > 0).tolist(), strict=True)]
+        keys = [orjson.dumps(name).decode() for name in names]
+        for j, i in enumerate(rows.tolist()):
+            cells = range(j * width, (j + 1) * width)
+            holding = ",".join(f'{key}:"{held[c]}"' for key, c in zip(keys, cells, strict=True))
+            if d.trading[i]:
+                trades = "{" + ",".join(f'{key}:"{moves[c]}"' for key, c in zip(keys, cells, strict=True)) + "}"
+            else:
+                trades = "null"
+            out[i] += f',"holdings_by_asset":{{{holding}}},"trades":{trades}'
+    return out
 
 
 def answer_texts(ctx: Context, d: Decisions, *, inline_disclosures: bool) -> list[str]:
@@ -63,18 +108,22 @@ def answer_texts(ctx: Context, d: Decisions, *, inline_disclosures: bool) -> lis
         f'"disclosures_version":{orjson.dumps(ctx.disclosures_version).decode()},'
         f'"created_at":{orjson.dumps(ctx.created_at).decode()}'
     )
-    limits = LIMIT_TEXTS
-    y, sf, u, e, v = number_columns(
-        d.risky_fraction, 1.0 - d.risky_fraction, d.unconstrained, d.expected_return, d.volatility
+    limits, sources = LIMIT_TEXTS, SOURCE_TEXTS
+    y, sf, u, e, v, ra = number_columns(
+        d.risky_fraction, 1.0 - d.risky_fraction, d.unconstrained, d.expected_return, d.volatility, d.risk_aversion
     )
+    circumstances = _circumstance_texts(ctx, d)
+    explanations = explanation_texts(ctx, d)
+    glide = (d.kind == GLIDE_PATH).tolist()
     return [
-        f'{{"allocation_id":"{a}",{head}"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{yy},'
+        f'{{"allocation_id":"{a}",{head}"member_id":"{m}",{mix}"preference":{p},"preference_source":{sources[g]},'
+        f'"risk_aversion_used":{aa},"risky_fraction":{yy},'
         f'"safe_fraction":{ss},"unconstrained_risky_fraction":{uu},"limited_by":{limits[lb]},{money}'
         f'"amount":"{am}","amounts":{ams},"by_asset":{ba},"expected_return":{ee},"volatility":{vv},'
-        f"{note}{tail}{r}}}"
-        for a, m, p, yy, ss, uu, lb, am, ams, ba, ee, vv, note, r in zip(
-            d.allocation_ids, d.member_ids, d.preference_texts, y, sf, u, d.limited.tolist(),
-            amount, amounts, asset_texts, e, v, notes, routed, strict=True,
+        f'"explanation":{ex},{note}{tail}{r}{c}}}'
+        for a, m, p, g, aa, yy, ss, uu, lb, am, ams, ba, ee, vv, ex, note, r, c in zip(
+            d.allocation_ids, d.member_ids, d.preference_texts, glide, ra, y, sf, u, d.limited.tolist(),
+            amount, amounts, asset_texts, e, v, explanations, notes, routed, circumstances, strict=True,
         )
     ]
 

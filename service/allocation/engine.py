@@ -22,6 +22,8 @@ import numpy as np
 
 from .answers import answer_texts, batch_head
 from .disclosures import DISCLOSURES_VERSION
+from .explanations import EXPLANATION_VERSION
+from .human_capital import account_fraction, check_income, present_value
 from .issues import FieldIssue, MemberErrors, batch_field
 from .line import AllocationLine
 from .members import NOT_HELD, Members, duplicate_members, read_members
@@ -29,6 +31,7 @@ from .mixes import MixTerms
 from .money import risky_units, split_rows
 from .policy import Policy
 from .preferences import bound_by_policy, check_preferences, wanted_fractions
+from .rebalancing import rebalance
 from .records import Context, Decisions, preference_texts, record_texts
 
 
@@ -76,12 +79,30 @@ def decide(
 ) -> Decisions:
     """The rules proper, on columns that were read and checked; refuses members no y satisfies."""
     line = line_for(view, policy)
-    wanted, impossible = wanted_fractions(members.preferences, line, policy)
+    p = members.preferences
+    n = members.size
+    wanted, aversion, impossible = wanted_fractions(p, line, policy)
     if impossible:
         raise MemberErrors(impossible, locate)
+    earning = np.not_equal(members.income, NOT_HELD)
+    human = np.full(n, NOT_HELD, dtype=np.int64)
+    discount = np.full(n, np.nan)
+    share = np.full(n, np.nan)
+    terms = policy.human_capital
+    if terms is not None and earning.any():
+        # Checked: every member with income has years and a preference by risk aversion.
+        rate = view.risk_free_rate if terms.discount_rate is None else terms.discount_rate
+        value = present_value(members.income.astype(np.float64), members.income_growth, rate, np.nan_to_num(p.years))
+        human = np.where(earning, np.rint(value).astype(np.int64), NOT_HELD)
+        discount = np.where(earning, rate, np.nan)
+        share = np.where(earning, terms.equity_like_share, np.nan)
+        # The rounded value in minor units, so that the record's numbers give the fraction again.
+        counted = np.where(earning, human, 0).astype(np.float64)
+        wanted = account_fraction(wanted, counted, members.total.astype(np.float64), terms.equity_like_share)
     fractions = bound_by_policy(wanted, policy)
     y = fractions.risky_fraction
     risky = risky_units(members.total, y)
+    safe = members.total - risky
     routed = members.routed
     if routed.any():
         # Direct the new money to the side that lacks it, within [0, contribution]: no selling.
@@ -90,24 +111,51 @@ def decide(
         to_safe = np.where(routed, members.contribution - lacking, NOT_HELD)
     else:
         to_risky = to_safe = members.held_risky  # all NOT_HELD
+    by_asset = split_rows(risky, view.weights)
+    width = len(view.codes) + 1
+    if members.held_assets is not None:
+        itemised = members.held_assets[:, 0] != NOT_HELD
+        moves = rebalance(itemised, members.held_assets, by_asset, safe, y, policy.rebalance_band)
+        held_assets, trading, trades = members.held_assets, moves.trading, moves.trades
+    else:
+        itemised = trading = np.zeros(n, dtype=bool)
+        held_assets = trades = np.zeros((n, width), dtype=np.int64)
+    # Unlimited (NaN) and an empty account's infinite fraction alike have no finite value to record.
+    unconstrained = np.where(np.isfinite(fractions.unconstrained), fractions.unconstrained, np.nan)
     return Decisions(
-        allocation_ids=new_ids(members.size),
+        allocation_ids=new_ids(n),
         member_ids=members.member_ids,
-        preference_texts=preference_texts(members.preferences),
+        preference_texts=preference_texts(p),
         risky_fraction=y,
-        unconstrained=fractions.unconstrained,
+        unconstrained=unconstrained,
         limited=fractions.limited,
         expected_return=line.expected_return(y),
         volatility=line.volatility(y),
         amount=members.total,
         risky=risky,
-        safe=members.total - risky,
-        by_asset=split_rows(risky, view.weights),
+        safe=safe,
+        by_asset=by_asset,
         held_risky=members.held_risky,
         held_safe=members.held_safe,
         contribution=members.contribution,
         to_risky=to_risky,
         to_safe=to_safe,
+        kind=p.kind,
+        preference_value=p.value,
+        confidence=p.confidence,
+        horizon=p.horizon,
+        years=p.years,
+        risk_aversion=aversion,
+        income=members.income,
+        income_growth=members.income_growth,
+        human_capital=human,
+        discount_rate=discount,
+        equity_like_share=share,
+        itemised=itemised,
+        held_assets=held_assets,
+        trading=trading,
+        trades=trades,
+        rebalance_band=np.full(n, policy.rebalance_band),
     )
 
 
@@ -123,12 +171,18 @@ class Setting:
 
     def context(self) -> Context:
         v = self.view
-        return Context(self.plan_id, v.version, v.content_hash, self.created_at, self.currency, DISCLOSURES_VERSION, v.codes)
+        return Context(
+            self.plan_id, v.version, v.content_hash, self.created_at, self.currency, DISCLOSURES_VERSION, v.codes,
+            EXPLANATION_VERSION,
+        )
 
 
 def _read_checked(items: Sequence[Any], on: Setting) -> tuple[Members, list[FieldIssue]]:
-    members, issues = read_members(items, on.currency)
-    return members, issues + check_preferences(members.preferences, on.policy)
+    members, issues = read_members(items, on.currency, on.view.codes)
+    p = members.preferences
+    issues += check_preferences(p, on.policy)
+    issues += check_income(np.not_equal(members.income, NOT_HELD), p.kind, p.years, on.policy)
+    return members, issues
 
 
 def allocate(

@@ -19,31 +19,33 @@ from numpy.typing import NDArray
 from .engine import Setting, decide_apart
 from .issues import FieldIssue
 from .members import NOT_HELD, Members
-from .preferences import KIND_NAMES, LIMIT_NAMES, MAX_LOSS, PreferenceColumns
+from .preferences import LIMIT_NAMES, PreferenceColumns
+from .records import preference_of_record
 
 # The largest moves shown by member (the distribution covers everyone).
 LARGEST_MOVES = 10
 
 
 def members_from_records(records: Sequence[Mapping[str, Any]]) -> tuple[Members, NDArray[np.float64], list[str | None]]:
-    """The members the records were made for, their logged risky fractions and bounds."""
+    """The members the records were made for, their logged risky fractions and bounds. Holdings
+    by asset are left out: trades are not part of what a version changes for a member."""
     n = len(records)
     kind = np.zeros(n, dtype=np.int8)
-    value, confidence, horizon = np.zeros(n), np.zeros(n), np.ones(n)
+    value, confidence, horizon, years = np.zeros(n), np.zeros(n), np.ones(n), np.full(n, np.nan)
     total = np.zeros(n, dtype=np.int64)
     held_risky = np.full(n, NOT_HELD, dtype=np.int64)
     held_safe = np.full(n, NOT_HELD, dtype=np.int64)
     contribution = np.zeros(n, dtype=np.int64)
+    income = np.full(n, NOT_HELD, dtype=np.int64)
+    growth = np.zeros(n)
     logged = np.zeros(n)
     bounds: list[str | None] = [None] * n
-    index = {name: i for i, name in enumerate(KIND_NAMES)}
     for i, r in enumerate(records):
-        preference = r["preference"]
-        k = MAX_LOSS if "max_loss" in preference else index[next(iter(preference))]
-        kind[i] = k
-        value[i] = preference[KIND_NAMES[k]]
-        if k == MAX_LOSS:
-            confidence[i], horizon[i] = preference["confidence"], preference["horizon_years"]
+        kind[i], value[i], confidence[i], horizon[i] = preference_of_record(r["preference"])
+        if "years_to_retirement" in r:
+            years[i] = r["years_to_retirement"]
+        if "income" in r:
+            income[i], growth[i] = r["income"]["annual_minor"], r["income"]["growth"]
         total[i] = r["amount_minor"]
         if "holdings_minor" in r:
             held_risky[i], held_safe[i] = r["holdings_minor"]
@@ -51,8 +53,8 @@ def members_from_records(records: Sequence[Mapping[str, Any]]) -> tuple[Members,
         logged[i] = r["risky_fraction"]
         bounds[i] = r["limited_by"]
     members = Members(
-        [r["member_id"] for r in records], PreferenceColumns(kind, value, confidence, horizon),
-        total, held_risky, held_safe, contribution,
+        [r["member_id"] for r in records], PreferenceColumns(kind, value, confidence, horizon, years),
+        total, held_risky, held_safe, contribution, income, growth,
     )
     return members, logged, bounds
 

@@ -9,6 +9,7 @@ an optional field given as null counts as left out.
 
 from __future__ import annotations
 
+import math
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -17,16 +18,23 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from .human_capital import MAX_INCOME_GROWTH, MIN_INCOME_GROWTH
 from .issues import FieldIssue
 from .money import Units, format_units, parse_amounts
-from .preferences import KIND_NAMES, MAX_LOSS, RISK_AVERSION, RISK_SCORE, PreferenceColumns
+from .preferences import GLIDE_PATH, KIND_NAMES, MAX_LOSS, RISK_AVERSION, RISK_SCORE, PreferenceColumns
 
 # Printable ASCII without space, quote or backslash: member ids go into log records unescaped.
 MEMBER_ID_PATTERN = r"[!#-\[\]-~]{1,128}"
 MEMBER_ID_RULE = "must be a string of 1 to 128 printable ASCII characters without spaces, quotes or backslashes"
-MEMBER_FIELDS = frozenset({"member_id", "amount", "preference", "holdings", "contribution"})
+MEMBER_FIELDS = frozenset({
+    "member_id", "amount", "preference", "holdings", "contribution",
+    "years_to_retirement", "income", "holdings_by_asset",
+})
+SAFE = "safe"  # the safe holding's key beside the asset codes in holdings_by_asset
 _LOSS_FIELDS = frozenset({"max_loss", "confidence", "horizon_years"})
 _PREFERENCE_FIELDS = frozenset(KIND_NAMES) | _LOSS_FIELDS
+# A member with only these fields needs none of the per-member reading of the rest.
+_BASIC_FIELDS = frozenset({"member_id", "amount", "preference", "holdings", "contribution"})
 _ONE_KIND = {k: i for i, k in enumerate(KIND_NAMES) if i != MAX_LOSS}
 _KINDS_RULE = "give exactly one of risk_aversion, target_volatility, max_loss (with confidence) or risk_score"
 _IDS = re.compile(f"(?:{MEMBER_ID_PATTERN}\n)*{MEMBER_ID_PATTERN}")
@@ -37,7 +45,9 @@ NOT_HELD = -1
 @dataclass(frozen=True)
 class Members:
     """n members as columns. `held_risky`/`held_safe` are NOT_HELD where no holdings were given;
-    `contribution` is 0 where none was."""
+    `contribution` is 0 where none was. `income` is NOT_HELD where none was given (its growth 0).
+    `held_assets` (n x assets + 1, the safe holding last) is None when no member itemised
+    holdings by asset, else NOT_HELD in the rows of members who did not."""
 
     member_ids: list[str]
     preferences: PreferenceColumns
@@ -45,6 +55,9 @@ class Members:
     held_risky: Units
     held_safe: Units
     contribution: Units
+    income: Units
+    income_growth: NDArray[np.float64]
+    held_assets: Units | None = None
 
     @property
     def size(self) -> int:
@@ -57,11 +70,12 @@ class Members:
     def rows(self, picked: list[int]) -> Members:
         """The members at these positions, in this order."""
         at = np.array(picked, dtype=np.intp)
-        p = self.preferences
         return Members(
             [self.member_ids[i] for i in picked],
-            PreferenceColumns(p.kind[at], p.value[at], p.confidence[at], p.horizon[at]),
+            self.preferences.rows(at),
             self.total[at], self.held_risky[at], self.held_safe[at], self.contribution[at],
+            self.income[at], self.income_growth[at],
+            None if self.held_assets is None else self.held_assets[at],
         )
 
 
@@ -70,7 +84,10 @@ def _number(v: Any) -> bool:
 
 
 def _preference(p: Any) -> tuple[int, float, float, float] | tuple[str, str]:
-    """(kind, value, confidence, horizon), or (field, reason) for what is wrong."""
+    """(kind, value, confidence, horizon), or (field, reason) for what is wrong. No preference at
+    all is the glide path's kind (whether the plan has one is the range checks' business)."""
+    if p is None:
+        return GLIDE_PATH, 0.0, 0.0, 1.0
     if type(p) is not dict:
         return "preference", f"must be an object: {_KINDS_RULE}"
     unknown = sorted(p.keys() - _PREFERENCE_FIELDS)
@@ -105,8 +122,9 @@ def _preference(p: Any) -> tuple[int, float, float, float] | tuple[str, str]:
     return MAX_LOSS, float(value), float(confidence), float(horizon)
 
 
-def read_members(items: Sequence[Any], currency: str) -> tuple[Members, list[FieldIssue]]:
+def read_members(items: Sequence[Any], currency: str, codes: Sequence[str] = ()) -> tuple[Members, list[FieldIssue]]:
     """Every member's fields into columns, and every problem found (none: all members readable).
+    `codes` are the mix's asset codes, which holdings_by_asset must give (with "safe").
 
     Members with a problem keep harmless placeholder values in the columns; callers must not
     answer them (the pipeline refuses the whole request)."""
@@ -122,16 +140,36 @@ def read_members(items: Sequence[Any], currency: str) -> tuple[Members, list[Fie
     routed_rows: list[int] = []
     held_risky: list[Any] = []
     held_safe: list[Any] = []
-    member_fields, one_kind = MEMBER_FIELDS, _ONE_KIND
+    years = [math.nan] * n
+    income_rows: list[int] = []
+    incomes: list[Any] = []
+    growth = [0.0] * n
+    itemised_rows: list[int] = []
+    itemised: list[Any] = []
+    member_fields, one_kind, basic = MEMBER_FIELDS, _ONE_KIND, _BASIC_FIELDS
+    itemised_keys = frozenset(codes) | {SAFE}
     for i, m in enumerate(items):
         if type(m) is not dict:
             issues.append(FieldIssue(i, "", "must be an object with member_id, preference and amount or holdings"))
             continue
-        if not m.keys() <= member_fields:
-            issues.append(FieldIssue(i, sorted(m.keys() - member_fields)[0], "is not a field of a member"))
+        keys = m.keys()
+        if not keys <= member_fields:
+            issues.append(FieldIssue(i, sorted(keys - member_fields)[0], "is not a field of a member"))
         ids[i] = m.get("member_id")
         amounts[i] = m.get("amount")
         contributions[i] = m.get("contribution")
+        if not keys <= basic:
+            _circumstances(i, m, years, income_rows, incomes, growth, issues)
+            by_asset = m.get("holdings_by_asset")
+            if by_asset is not None:
+                if type(by_asset) is not dict or by_asset.keys() != itemised_keys:
+                    listed = ", ".join([*codes, SAFE])
+                    issues.append(FieldIssue(i, "holdings_by_asset", f"must be an object with exactly one amount for each of: {listed}"))
+                elif m.get("holdings") is not None:
+                    issues.append(FieldIssue(i, "holdings", "give holdings or holdings_by_asset, not both"))
+                else:
+                    itemised_rows.append(i)
+                    itemised.append(by_asset)
         holdings = m.get("holdings")
         if holdings is not None:
             if type(holdings) is not dict or holdings.keys() != {"risky", "safe"}:
@@ -165,13 +203,74 @@ def read_members(items: Sequence[Any], currency: str) -> tuple[Members, list[Fie
                 issues.append(FieldIssue(i, "member_id", "required"))
             elif type(x) is not str or not _ID.fullmatch(x):
                 issues.append(FieldIssue(i, "member_id", MEMBER_ID_RULE))
+    held_assets = None if not itemised_rows else _itemised(itemised_rows, itemised, codes, n, currency, issues)
     total, held_r, held_s, contribution = _accounts(
-        amounts, contributions, routed_rows, held_risky, held_safe, currency, issues
+        amounts, contributions, routed_rows, held_risky, held_safe, currency, issues, itemised_rows, held_assets
     )
+    income = np.full(n, NOT_HELD, dtype=np.int64)
+    if income_rows:
+        units, problems = parse_amounts(incomes, currency)
+        income[income_rows] = units
+        issues += [FieldIssue(income_rows[j], "income.annual", reason) for j, reason in problems]
     preferences = PreferenceColumns(
-        np.array(kind, dtype=np.int8), np.array(value), np.array(confidence), np.array(horizon)
+        np.array(kind, dtype=np.int8), np.array(value), np.array(confidence), np.array(horizon), np.array(years)
     )
-    return Members([str(x) for x in ids], preferences, total, held_r, held_s, contribution), issues
+    members = Members(
+        [str(x) for x in ids], preferences, total, held_r, held_s, contribution, income, np.array(growth), held_assets
+    )
+    return members, issues
+
+
+def _circumstances(
+    i: int, m: dict[str, Any], years: list[float], income_rows: list[int], incomes: list[Any],
+    growth: list[float], issues: list[FieldIssue],
+) -> None:
+    """years_to_retirement and income of member i (their ranges against the plan are checked later)."""
+    y = m.get("years_to_retirement")
+    if y is not None:
+        if _number(y):
+            years[i] = float(y)
+        else:
+            issues.append(FieldIssue(i, "years_to_retirement", "must be a number of years (never a birth date)"))
+    income = m.get("income")
+    if income is None:
+        return
+    if type(income) is not dict or not income.keys() <= {"annual", "growth"} or income.get("annual") is None:
+        issues.append(FieldIssue(i, "income", 'must be an object with "annual" (money a year) and optionally "growth"'))
+        return
+    g = income.get("growth")
+    if g is not None:
+        if not _number(g):
+            issues.append(FieldIssue(i, "income.growth", "must be a number: the annual growth rate (0.02 = 2 %)"))
+            return
+        if not MIN_INCOME_GROWTH <= g <= MAX_INCOME_GROWTH:
+            issues.append(FieldIssue(
+                i, "income.growth",
+                f"{g} is not a plausible annual growth for a working life: it must lie in "
+                f"[{MIN_INCOME_GROWTH:g}, {MAX_INCOME_GROWTH:g}] (a decimal: 0.02 = 2 %)",
+            ))
+            return
+        growth[i] = float(g)
+    income_rows.append(i)
+    incomes.append(income["annual"])
+
+
+def _itemised(
+    rows: list[int], given: list[dict[str, Any]], codes: Sequence[str], n: int, currency: str, issues: list[FieldIssue]
+) -> Units:
+    """holdings_by_asset as minor units, the mix's asset order and then the safe holding."""
+    names = [*codes, SAFE]
+    flat = [h[name] for h in given for name in names]
+    units, problems = parse_amounts(flat, currency)
+    width = len(names)
+    for j, reason in problems:
+        issues.append(FieldIssue(rows[j // width], f"holdings_by_asset.{names[j % width]}", reason))
+    for j, value in enumerate(flat):
+        if value is None:
+            issues.append(FieldIssue(rows[j // width], f"holdings_by_asset.{names[j % width]}", "required: an amount"))
+    held = np.full((n, width), NOT_HELD, dtype=np.int64)
+    held[rows] = units.reshape(len(rows), width)
+    return held
 
 
 def duplicate_members(ids: Sequence[str]) -> list[FieldIssue]:
@@ -195,12 +294,15 @@ def _accounts(
     held_safe: list[Any],
     currency: str,
     issues: list[FieldIssue],
+    itemised_rows: list[int],
+    held_assets: Units | None,
 ) -> tuple[Units, Units, Units, Units]:
-    """The money each member splits: its amount, or holdings plus contribution."""
+    """The money each member splits: its amount, or holdings plus contribution. Holdings by asset
+    count as holdings {risky: their sum, safe}."""
     n = len(amounts)
     amount, problems = parse_amounts(amounts, currency)
     issues += [FieldIssue(i, "amount", reason) for i, reason in problems]
-    if not routed_rows and all(c is None for c in contributions):
+    if not routed_rows and not itemised_rows and all(c is None for c in contributions):
         # The usual request: amounts only.
         for i, a in enumerate(amounts):
             if a is None:
@@ -220,6 +322,10 @@ def _accounts(
             units, problems = parse_amounts(raw, currency)
             column[routed_rows] = units
             issues += [FieldIssue(routed_rows[j], name, reason) for j, reason in problems]
+    if held_assets is not None:
+        rows = held_assets[itemised_rows]
+        risky[itemised_rows] = rows[:, :-1].sum(axis=1)
+        safe[itemised_rows] = rows[:, -1]
     routed = risky != NOT_HELD
     stated = np.array([a is not None for a in amounts], dtype=bool)
     from_holdings = np.where(routed, risky + safe + contribution, 0)

@@ -7,7 +7,9 @@
 - loss tolerance (Telser's safety-first criterion, normal returns): the largest y with
   P(R_H < -L) <= 1 - c, where over H years R_H ~ N(H E[r](y), H sigma(y)^2), i.e.
   H E[r](y) - z_c sqrt(H) sigma(y) >= -L with z_c the standard normal c-quantile;
-- risk score: the plan's table gives A, then as risk aversion.
+- risk score: the plan's table gives A, then as risk aversion;
+- no preference: the plan's glide path gives A from the member's years to retirement (linear
+  between its points, flat beyond its ends), then as risk aversion.
 Then the policy band [min_risky_fraction, max_risky_fraction] bounds y and names what bound.
 
 One code path for one member or 300,000: every rule is a numpy expression over columns, and
@@ -21,17 +23,20 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.special import ndtri
+from scipy.special import ndtr, ndtri
 
 from .issues import FieldIssue
 from .line import AllocationLine
-from .policy import MAX_RISK_AVERSION, Policy
+from .policy import MAX_RISK_AVERSION, MAX_YEARS_TO_RETIREMENT, Policy
 
 Floats = NDArray[np.float64]
 
-# Preference kinds, as stored in `Members.kind`.
-RISK_AVERSION, TARGET_VOLATILITY, MAX_LOSS, RISK_SCORE = 0, 1, 2, 3
+# Preference kinds, as stored in `PreferenceColumns.kind`; KIND_NAMES are those a member states.
+RISK_AVERSION, TARGET_VOLATILITY, MAX_LOSS, RISK_SCORE, GLIDE_PATH = 0, 1, 2, 3, 4
 KIND_NAMES = ("risk_aversion", "target_volatility", "max_loss", "risk_score")
+KIND_COUNT = 5
+# Where the preference came from, as answers and records name it.
+SOURCE_MEMBER, SOURCE_GLIDE_PATH = "member", "glide_path"
 # Bound codes in `Fractions.limited`; LIMIT_NAMES[code] is the policy field (None: no bound).
 LIMIT_NONE, LIMIT_MIN, LIMIT_MAX = 0, 1, 2
 LIMIT_NAMES = (None, "min_risky_fraction", "max_risky_fraction")
@@ -42,13 +47,18 @@ MAX_HORIZON_YEARS = 100.0
 
 @dataclass(frozen=True)
 class PreferenceColumns:
-    """Preferences of n members: `value` is A, s, L or the score by `kind`; `confidence` and
-    `horizon` belong to max_loss (0 and 1 elsewhere)."""
+    """Preferences of n members: `value` is A, s, L or the score by `kind` (0 for GLIDE_PATH);
+    `confidence` and `horizon` belong to max_loss (0 and 1 elsewhere). `years` is the member's
+    years to retirement (NaN: not given), which the glide path and human capital read."""
 
     kind: NDArray[np.int8]
     value: Floats
     confidence: Floats
     horizon: Floats
+    years: Floats
+
+    def rows(self, at: NDArray[np.intp]) -> PreferenceColumns:
+        return PreferenceColumns(self.kind[at], self.value[at], self.confidence[at], self.horizon[at], self.years[at])
 
 
 @dataclass(frozen=True)
@@ -65,7 +75,7 @@ def _issues(mask: NDArray[np.bool_], field: str, reason: str) -> list[FieldIssue
 
 def kinds_present(kind: NDArray[np.int8]) -> NDArray[np.bool_]:
     """Which preference kinds occur (one pass; np.unique costs more than this on any size)."""
-    return np.bincount(kind, minlength=len(KIND_NAMES)) > 0
+    return np.bincount(kind, minlength=KIND_COUNT) > 0
 
 
 def check_preferences(p: PreferenceColumns, policy: Policy) -> list[FieldIssue]:
@@ -103,6 +113,17 @@ def check_preferences(p: PreferenceColumns, policy: Policy) -> list[FieldIssue]:
             listed = ", ".join(str(score) for score in table)
             checks.append((rs & ~known, "preference.risk_score",
                            f"is not a score of the plan's risk_score_table ({listed})"))
+    if present[GLIDE_PATH]:
+        glide = k == GLIDE_PATH
+        if policy.glide_path is None:
+            checks.append((glide, "preference", "required: this plan's policy has no glide_path to default from"))
+        else:
+            checks.append((glide & np.isnan(p.years), "years_to_retirement",
+                           "required without a preference: the plan's glide_path sets risk aversion by it"))
+    given = ~np.isnan(p.years)
+    if given.any():
+        checks.append((given & ~((p.years >= 0) & (p.years <= MAX_YEARS_TO_RETIREMENT)), "years_to_retirement",
+                       f"must be a number of years in [0, {MAX_YEARS_TO_RETIREMENT:g}]"))
     found: list[FieldIssue] = []
     for mask, field, reason in checks:
         if mask.any():
@@ -142,20 +163,45 @@ def _loss_fraction(loss: Floats, confidence: Floats, horizon: Floats, line: Allo
     return y
 
 
-def wanted_fractions(p: PreferenceColumns, line: AllocationLine, policy: Policy) -> tuple[Floats, list[FieldIssue]]:
-    """Each member's y before the policy band (NaN = unlimited), and members no y can satisfy."""
+def risk_aversions(p: PreferenceColumns, policy: Policy) -> Floats:
+    """The risk aversion each member's preference comes to (NaN for target volatility and max_loss)."""
     k = p.kind
     present = kinds_present(k).tolist()
-    a = p.value
+    a = np.where((k == RISK_AVERSION) | (k == RISK_SCORE), p.value, np.nan)
     if present[RISK_SCORE]:
         table = policy.risk_score_table
         keys = np.array(sorted(table), dtype=float)
         values = np.array([table[int(s)] for s in keys.tolist()], dtype=float)
         at = np.searchsorted(keys, a).clip(0, len(keys) - 1)
         a = np.where(k == RISK_SCORE, values[at], a)
+    if present[GLIDE_PATH] and policy.glide_path is not None:
+        path = policy.glide_path
+        # np.interp is linear between points and flat beyond the ends: the glide path's rule.
+        a = np.where(k == GLIDE_PATH, np.interp(p.years, path.years, path.risk_aversion), a)
+    return a
+
+
+def loss_chance(loss: Floats, horizon: Floats, expected_return: Floats, volatility: Floats) -> Floats:
+    """P(R_H < -L) under the same model: R_H ~ N(H E[r], H sigma^2). No risk: 0 or 1."""
+    shortfall = -loss - horizon * expected_return
+    spread = np.sqrt(horizon) * volatility
+    with np.errstate(divide="ignore", invalid="ignore"):
+        chance = ndtr(shortfall / spread)
+    return np.where(spread > 0.0, chance, (shortfall > 0.0).astype(np.float64))
+
+
+def wanted_fractions(
+    p: PreferenceColumns, line: AllocationLine, policy: Policy
+) -> tuple[Floats, Floats, list[FieldIssue]]:
+    """Each member's y before the policy band (NaN = unlimited), the risk aversion it came from
+    (NaN where none), and members no y can satisfy."""
+    k = p.kind
+    present = kinds_present(k).tolist()
+    a = risk_aversions(p, policy)
     # Every kind's formula on every row (a few flops each), then one choice by mask: cheaper than
     # gathering rows per kind, and the same code for one member or many.
-    wanted = _aversion_fraction(a, line) if present[RISK_AVERSION] or present[RISK_SCORE] else a
+    by_aversion = present[RISK_AVERSION] or present[RISK_SCORE] or present[GLIDE_PATH]
+    wanted = _aversion_fraction(np.where(np.isnan(a), 1.0, a), line) if by_aversion else p.value.copy()
     if present[TARGET_VOLATILITY]:
         wanted = np.where(k == TARGET_VOLATILITY, p.value / line.tangency_volatility, wanted)
     issues: list[FieldIssue] = []
@@ -171,7 +217,7 @@ def wanted_fractions(p: PreferenceColumns, line: AllocationLine, policy: Policy)
                 "no risky fraction keeps the chance of this loss within 1 - confidence over the horizon: "
                 f"even the safe holding fails it at the mix's risk-free rate of {line.risk_free_rate}",
             )
-    return wanted, issues
+    return wanted, a, issues
 
 
 def bound_by_policy(wanted: Floats, policy: Policy) -> Fractions:

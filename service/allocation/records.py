@@ -24,10 +24,14 @@ from numpy.typing import NDArray
 from .members import NOT_HELD
 from .money import Units, number_columns, numbers
 from .preferences import (
+    GLIDE_PATH,
+    KIND_NAMES,
     LIMIT_NAMES,
     MAX_LOSS,
     RISK_AVERSION,
     RISK_SCORE,
+    SOURCE_GLIDE_PATH,
+    SOURCE_MEMBER,
     TARGET_VOLATILITY,
     PreferenceColumns,
     kinds_present,
@@ -35,6 +39,7 @@ from .preferences import (
 
 RECORD_FORM = "mixline.allocation.v1"
 LIMIT_TEXTS = tuple(orjson.dumps(name).decode() for name in LIMIT_NAMES)
+SOURCE_TEXTS = (orjson.dumps(SOURCE_MEMBER).decode(), orjson.dumps(SOURCE_GLIDE_PATH).decode())
 
 
 @dataclass(frozen=True)
@@ -48,6 +53,7 @@ class Context:
     currency: str
     disclosures_version: str
     codes: tuple[str, ...]  # the mix's asset codes, in the order of by_asset
+    explanation_version: str | None = None  # None: a record from before explanations were given
 
 
 @dataclass(frozen=True)
@@ -71,6 +77,23 @@ class Decisions:
     contribution: Units
     to_risky: Units  # the contribution split, where holdings were given
     to_safe: Units
+    # The preference as numbers (PreferenceColumns' meaning) and the risk aversion it came to (NaN: none).
+    kind: NDArray[np.int8]
+    preference_value: NDArray[np.float64]
+    confidence: NDArray[np.float64]
+    horizon: NDArray[np.float64]
+    years: NDArray[np.float64]  # NaN: not given
+    risk_aversion: NDArray[np.float64]
+    income: Units  # NOT_HELD: not given
+    income_growth: NDArray[np.float64]
+    human_capital: Units  # NOT_HELD where future earnings were not counted
+    discount_rate: NDArray[np.float64]
+    equity_like_share: NDArray[np.float64]
+    itemised: NDArray[np.bool_]  # holdings given by asset
+    held_assets: Units  # (members, assets + 1), the safe holding last; meaningful where itemised
+    trading: NDArray[np.bool_]  # itemised and outside the rebalancing band: trades given
+    trades: Units  # (members, assets + 1)
+    rebalance_band: NDArray[np.float64]
 
     @property
     def size(self) -> int:
@@ -87,9 +110,10 @@ class Decisions:
 
 
 def preference_texts(p: PreferenceColumns) -> list[str]:
-    """Each member's preference as the record keeps it (sorted keys; max_loss with its horizon)."""
+    """Each member's preference as the record keeps it (sorted keys; max_loss with its horizon;
+    null where the member stated none)."""
     value = numbers(p.value)
-    out = [""] * p.kind.shape[0]
+    out = ["null"] * p.kind.shape[0]
     for kind in np.flatnonzero(kinds_present(p.kind)).tolist():
         rows = np.flatnonzero(p.kind == kind).tolist()
         if kind == RISK_AVERSION:
@@ -105,6 +129,8 @@ def preference_texts(p: PreferenceColumns) -> list[str]:
                 '{"confidence":' + c + ',"horizon_years":' + h + ',"max_loss":' + value[i] + "}"
                 for i, c, h in zip(rows, conf, horizon, strict=True)
             ]
+        elif kind == GLIDE_PATH:
+            continue
         else:
             raise ValueError(f"unknown preference kind {kind}")
         for i, text in zip(rows, texts, strict=True):
@@ -126,6 +152,49 @@ def number_rows(matrix: Units) -> list[str]:
     return text[2:-2].split("],[")
 
 
+def _member_facts(d: Decisions) -> tuple[list[str], list[str], list[str]]:
+    """The records' facts that only some members have, as text per member, for the places sorted
+    keys put them: (holdings by asset, human capital and income, years to retirement)."""
+    n = d.size
+    itemised, earnings, years = [""] * n, [""] * n, [""] * n
+    if d.itemised.any():
+        rows = np.flatnonzero(d.itemised)
+        held = number_rows(d.held_assets[rows])
+        for j, i in enumerate(rows.tolist()):
+            itemised[i] = f'"holdings_by_asset_minor":[{held[j]}],'
+    earning = np.not_equal(d.income, NOT_HELD)
+    if earning.any():
+        rows = np.flatnonzero(earning)
+        annual, value = number_columns(d.income[rows], d.human_capital[rows])
+        growth, rate, share = number_columns(d.income_growth[rows], d.discount_rate[rows], d.equity_like_share[rows])
+        counted = np.not_equal(d.human_capital[rows], NOT_HELD).tolist()
+        for j, i in enumerate(rows.tolist()):
+            human = (
+                f'"human_capital":{{"discount_rate":{rate[j]},"equity_like_share":{share[j]},"value_minor":{value[j]}}},'
+                if counted[j] else ""
+            )
+            earnings[i] = f'{human}"income":{{"annual_minor":{annual[j]},"growth":{growth[j]}}},'
+    given = ~np.isnan(d.years)
+    if given.any():
+        rows = np.flatnonzero(given)
+        for i, text in zip(rows.tolist(), numbers(d.years[rows]), strict=True):
+            years[i] = f',"years_to_retirement":{text}'
+    return itemised, earnings, years
+
+
+def _rebalancing(d: Decisions) -> tuple[list[str], list[str]]:
+    """The rebalancing band and trades of members who itemised their holdings, as record text."""
+    n = d.size
+    bands, trades = [""] * n, [""] * n
+    if d.itemised.any():
+        rows = np.flatnonzero(d.itemised)
+        moves = number_rows(d.trades[rows])
+        for j, (i, band) in enumerate(zip(rows.tolist(), numbers(d.rebalance_band[rows]), strict=True)):
+            bands[i] = f'"rebalance_band":{band},'
+            trades[i] = f'"trades_minor":[{moves[j]}],' if d.trading[i] else '"trades_minor":null,'
+    return bands, trades
+
+
 def record_texts(ctx: Context, d: Decisions) -> list[str]:
     """The canonical JSON text of every record. Ids must need no JSON escaping (the reader's
     member id pattern and our allocation ids ensure it)."""
@@ -139,52 +208,78 @@ def record_texts(ctx: Context, d: Decisions) -> list[str]:
         for j, i in enumerate(rows.tolist()):
             routed_a[i] = f'"contribution_minor":{contribution[j]},"contribution_split_minor":[{to_r[j]},{to_s[j]}],'
             routed_b[i] = f'"holdings_minor":[{held_r[j]},{held_s[j]}],'
+    itemised, earnings, years = _member_facts(d)
+    bands, trades = _rebalancing(d)
     shared = (
         f'"created_at":{_json(ctx.created_at)},"currency":{_json(ctx.currency)},'
         f'"disclosures_version":{_json(ctx.disclosures_version)},'
     )
-    form = f'"form":{_json(RECORD_FORM)},'
+    explained = "" if ctx.explanation_version is None else f'"explanation_version":{_json(ctx.explanation_version)},'
+    form = f'{explained}"form":{_json(RECORD_FORM)},'
     mix = (
         f'"mix_content_hash":{_json(ctx.mix_content_hash)},"mix_version":{_json(ctx.mix_version)},'
         f'"plan_id":{_json(ctx.plan_id)},'
     )
     limits = LIMIT_TEXTS
+    sources = SOURCE_TEXTS
     amount, risky, safe = number_columns(d.amount, d.risky, d.safe)
-    e, y, u, v = number_columns(d.expected_return, d.risky_fraction, d.unconstrained, d.volatility)
+    e, y, u, v, a = number_columns(d.expected_return, d.risky_fraction, d.unconstrained, d.volatility, d.risk_aversion)
     return [
-        f'{{"allocation_id":"{a}","amount_minor":{b},"by_asset_minor":[{c}],{ra}{shared}"expected_return":{ee},'
-        f'{form}{rb}"limited_by":{limits[lb]},"member_id":"{m}",{mix}"preference":{p},"risky_fraction":{yy},'
-        f'"split_minor":[{r},{s}],"unconstrained_risky_fraction":{uu},"volatility":{vv}}}'
-        for a, b, c, ra, ee, rb, lb, m, p, yy, r, s, uu, vv in zip(
-            d.allocation_ids, amount, number_rows(d.by_asset), routed_a, e, routed_b, d.limited.tolist(),
-            d.member_ids, d.preference_texts, y, risky, safe, u, v, strict=True,
+        f'{{"allocation_id":"{aid}","amount_minor":{b},"by_asset_minor":[{c}],{ra}{shared}"expected_return":{ee},'
+        f'{form}{it}{rb}{hc}"limited_by":{limits[lb]},"member_id":"{m}",{mix}"preference":{p},'
+        f'"preference_source":{sources[k == GLIDE_PATH]},{bd}"risk_aversion_used":{aa},"risky_fraction":{yy},'
+        f'"split_minor":[{r},{s}],{tr}"unconstrained_risky_fraction":{uu},"volatility":{vv}{yr}}}'
+        for aid, b, c, ra, ee, it, rb, hc, lb, m, p, k, bd, aa, yy, r, s, tr, uu, vv, yr in zip(
+            d.allocation_ids, amount, number_rows(d.by_asset), routed_a, e, itemised, routed_b, earnings,
+            d.limited.tolist(), d.member_ids, d.preference_texts, d.kind.tolist(), bands, a, y, risky, safe,
+            trades, u, v, years, strict=True,
         )
     ]
 
 
+def preference_of_record(preference: Mapping[str, Any] | None) -> tuple[int, float, float, float]:
+    """(kind, value, confidence, horizon) of a recorded preference (None: the glide path's)."""
+    if preference is None:
+        return GLIDE_PATH, 0.0, 0.0, 1.0
+    if "max_loss" in preference:
+        return MAX_LOSS, float(preference["max_loss"]), float(preference["confidence"]), float(preference["horizon_years"])
+    (name, value), = preference.items()
+    return KIND_NAMES.index(name), float(value), 0.0, 1.0
+
+
 def decisions_from_record(record: Mapping[str, Any], codes: Sequence[str]) -> tuple[Context, Decisions]:
-    """A stored record back as a context and decisions of one member."""
+    """A stored record back as a context and decisions of one member. Fields a record made before
+    they existed lacks read as not given."""
     routed = "holdings_minor" in record
     held = record["holdings_minor"] if routed else (NOT_HELD, NOT_HELD)
     split = record["contribution_split_minor"] if routed else (NOT_HELD, NOT_HELD)
     unconstrained = record["unconstrained_risky_fraction"]
+    kind, value, confidence, horizon = preference_of_record(record["preference"])
+    income = record.get("income")
+    human = record.get("human_capital")
+    itemised = "holdings_by_asset_minor" in record
+    width = len(codes) + 1
+    trades = record.get("trades_minor")
 
     def units(*values: int) -> Units:
         return np.array(values, dtype=np.int64)
 
-    def reals(value: float) -> NDArray[np.float64]:
-        return np.array([value], dtype=np.float64)
+    def reals(value: float | None) -> NDArray[np.float64]:
+        return np.array([np.nan if value is None else value], dtype=np.float64)
+
+    def matrix(values: Sequence[int] | None) -> Units:
+        return np.array([values if values is not None else [0] * width], dtype=np.int64).reshape(1, width)
 
     ctx = Context(
         record["plan_id"], record["mix_version"], record["mix_content_hash"], record["created_at"],
-        record["currency"], record["disclosures_version"], tuple(codes),
+        record["currency"], record["disclosures_version"], tuple(codes), record.get("explanation_version"),
     )
     decisions = Decisions(
         allocation_ids=[record["allocation_id"]],
         member_ids=[record["member_id"]],
         preference_texts=[orjson.dumps(record["preference"], option=orjson.OPT_SORT_KEYS).decode()],
         risky_fraction=reals(record["risky_fraction"]),
-        unconstrained=reals(np.nan if unconstrained is None else unconstrained),
+        unconstrained=reals(unconstrained),
         limited=np.array([LIMIT_NAMES.index(record["limited_by"])], dtype=np.int8),
         expected_return=reals(record["expected_return"]),
         volatility=reals(record["volatility"]),
@@ -197,5 +292,21 @@ def decisions_from_record(record: Mapping[str, Any], codes: Sequence[str]) -> tu
         contribution=units(record.get("contribution_minor", 0)),
         to_risky=units(split[0]),
         to_safe=units(split[1]),
+        kind=np.array([kind], dtype=np.int8),
+        preference_value=reals(value),
+        confidence=reals(confidence),
+        horizon=reals(horizon),
+        years=reals(record.get("years_to_retirement")),
+        risk_aversion=reals(record.get("risk_aversion_used")),
+        income=units(NOT_HELD if income is None else income["annual_minor"]),
+        income_growth=reals(0.0 if income is None else income["growth"]),
+        human_capital=units(NOT_HELD if human is None else human["value_minor"]),
+        discount_rate=reals(None if human is None else human["discount_rate"]),
+        equity_like_share=reals(None if human is None else human["equity_like_share"]),
+        itemised=np.array([itemised]),
+        held_assets=matrix(record.get("holdings_by_asset_minor")),
+        trading=np.array([trades is not None]),
+        trades=matrix(trades),
+        rebalance_band=reals(record.get("rebalance_band")),
     )
     return ctx, decisions

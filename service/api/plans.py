@@ -59,6 +59,9 @@ def create_plan(body: PlanIn, caller: CallerDep, state: StateDep) -> Response:
         max_risky_fraction=p.max_risky_fraction,
         borrowing_rate=p.borrowing_rate,
         risk_score_table=p.risk_score_table,
+        glide_path=None if p.glide_path is None else [point.model_dump() for point in p.glide_path],
+        human_capital=None if p.human_capital is None else p.human_capital.model_dump(),
+        rebalance_band=p.rebalance_band,
     )
     try:
         with state.db.writing() as s:

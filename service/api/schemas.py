@@ -25,6 +25,7 @@ from service.allocation import (
     check_decimal_rates,
     check_version_name,
 )
+from service.allocation.policy import DEFAULT_REBALANCE_BAND
 from service.allocation.requests import VERSION_PATTERN
 
 # Separates a sub-field from the reason in a model validator's message (see errors.validation_errors).
@@ -78,11 +79,37 @@ class Problem(BaseModel):
 # ---- plans and keys -------------------------------------------------------------------------
 
 
+class GlidePointIn(Strict):
+    years_to_retirement: float = Field(description="years to retirement at this point (>= 0, at most 60)")
+    risk_aversion: float = Field(description="the risk aversion for members this far from retirement")
+
+
+class HumanCapitalIn(Strict):
+    discount_rate: float | None = Field(
+        default=None, description="annual rate future earnings are discounted at; null: the mix's risk-free rate"
+    )
+    equity_like_share: float = Field(
+        default=0.0, description="the share of future earnings that behaves like the risky mix, in [0, 1]"
+    )
+
+
 class PolicyIn(Strict):
     max_risky_fraction: float = 1.0
     min_risky_fraction: float = 0.0
     borrowing_rate: float | None = None
     risk_score_table: dict[str, float] | None = None
+    glide_path: list[GlidePointIn] | None = Field(
+        default=None,
+        description="risk aversion by years to retirement for members who state no preference: at least two "
+        "points with distinct years, linear in between, flat beyond the ends",
+    )
+    human_capital: HumanCapitalIn | None = Field(
+        default=None, description="count members' future earnings (sent as `income`) as part of their wealth"
+    )
+    rebalance_band: float = Field(
+        default=DEFAULT_REBALANCE_BAND,
+        description="no trades while the account's risky fraction is within this distance of the target (0.05 = 5 points)",
+    )
 
 
 class PlanIn(Strict):

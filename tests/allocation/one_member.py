@@ -27,7 +27,7 @@ def choose(preference: dict[str, Any], line: AllocationLine, policy: Policy) -> 
     issues += check_preferences(members.preferences, policy)
     if issues:
         raise MemberErrors(issues, single_field)
-    wanted, impossible = wanted_fractions(members.preferences, line, policy)
+    wanted, _, impossible = wanted_fractions(members.preferences, line, policy)
     if impossible:
         raise MemberErrors(impossible, single_field)
     f = bound_by_policy(wanted, policy)
