@@ -165,6 +165,9 @@ def read_members(items: Sequence[Any], currency: str, codes: Sequence[str] = ())
                 if type(by_asset) is not dict or by_asset.keys() != itemised_keys:
                     listed = ", ".join([*codes, SAFE])
                     issues.append(FieldIssue(i, "holdings_by_asset", f"must be an object with exactly one amount for each of: {listed}"))
+                    # Read as empty holdings from here on, so that the one mistake is reported once.
+                    itemised_rows.append(i)
+                    itemised.append(dict.fromkeys(itemised_keys, 0))
                 elif m.get("holdings") is not None:
                     issues.append(FieldIssue(i, "holdings", "give holdings or holdings_by_asset, not both"))
                 else:
@@ -231,6 +234,7 @@ def _circumstances(
         if _number(y):
             years[i] = float(y)
         else:
+            years[i] = 0.0  # a placeholder, so that "required" is not reported beside this
             issues.append(FieldIssue(i, "years_to_retirement", "must be a number of years (never a birth date)"))
     income = m.get("income")
     if income is None:

@@ -26,6 +26,7 @@ from service.allocation import (
     check_version_name,
 )
 from service.allocation.policy import DEFAULT_REBALANCE_BAND
+from service.allocation.preferences import SOURCE_GLIDE_PATH, SOURCE_MEMBER
 from service.allocation.requests import VERSION_PATTERN
 
 # Separates a sub-field from the reason in a model validator's message (see errors.validation_errors).
@@ -368,12 +369,32 @@ class HoldingsIn(Strict):
     safe: Money
 
 
+class IncomeIn(Strict):
+    annual: Money = Field(description="earnings a year, paid at each year's end until retirement")
+    growth: float | None = Field(
+        default=None, description="annual growth of the earnings, in [-0.2, 0.2] (0.02 = 2 %); left out: 0"
+    )
+
+
 class MemberIn(Strict):
     member_id: MemberId
     amount: Money | None = None
-    preference: PreferenceIn
+    preference: PreferenceIn | None = Field(
+        default=None, description="left out: the plan's glide_path sets risk aversion from years_to_retirement"
+    )
     holdings: HoldingsIn | None = None
     contribution: Money | None = None
+    years_to_retirement: float | None = Field(
+        default=None, description="years until the member retires, in [0, 60] (never a birth date: the log is permanent)"
+    )
+    income: IncomeIn | None = Field(
+        default=None, description="future earnings, counted as wealth where the plan's policy has human_capital"
+    )
+    holdings_by_asset: dict[str, Money] | None = Field(
+        default=None,
+        description='what the account holds now, one amount per asset code of the mix and "safe"; '
+        "the answer then gives the trades to the split (instead of `holdings`)",
+    )
 
 
 class AllocationIn(MemberIn):
@@ -390,13 +411,36 @@ class MoneySplitOut(BaseModel):
     safe: str
 
 
+class ExplanationOut(BaseModel):
+    text: str = Field(description="plain language built from the answer's numbers, rounded for reading")
+    version: str = Field(description="the wording's version; texts of a version never change")
+
+
+class HumanCapitalOut(BaseModel):
+    value: str = Field(description="present value of the member's future earnings (money)")
+    ratio_to_account: float | None = Field(description="value / account; null when the account is empty")
+
+
+class IncomeOut(BaseModel):
+    annual: str
+    growth: float
+
+
 class _AnswerFields(BaseModel):
     allocation_id: str
     plan_id: str
     member_id: str
     mix_version: str
     mix_content_hash: str
-    preference: dict[str, float | int]
+    preference: dict[str, float | int] | None = Field(description="as stated; null when the glide path set it")
+    preference_source: Annotated[
+        str, WithJsonSchema({"type": "string", "enum": [SOURCE_MEMBER, SOURCE_GLIDE_PATH]}),
+        Field(description="member: the preference was stated; glide_path: the plan's glide path set it"),
+    ]
+    risk_aversion_used: float | None = Field(
+        description="the risk aversion the split follows (a risk score's or the glide path's); null for "
+        "target_volatility and max_loss"
+    )
     risky_fraction: float
     safe_fraction: float
     unconstrained_risky_fraction: float | None
@@ -413,6 +457,16 @@ class _AnswerFields(BaseModel):
     contribution: str | None = None
     contribution_split: MoneySplitOut | None = None
     after_contribution: MoneySplitOut | None = None
+    explanation: ExplanationOut | None = Field(description="null only for records made before explanations")
+    years_to_retirement: float | None = None
+    income: IncomeOut | None = None
+    human_capital: HumanCapitalOut | None = None
+    holdings_by_asset: dict[str, str] | None = None
+    trades: dict[str, str] | None = Field(
+        default=None,
+        description='with holdings_by_asset: signed money per asset code and "safe" ("+" buys, "-" sells), '
+        "summing to the contribution (zero without one); null within the plan's rebalance_band",
+    )
 
 
 class AllocationOut(_AnswerFields):

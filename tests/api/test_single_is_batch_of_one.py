@@ -1,7 +1,8 @@
 """Differential test of the two real entry points: a member posted alone and inside a batch.
 
-Hypothesis draws plans (with and without borrowing, min/max bands, risk-score tables), mixes and
-members (every preference kind, with and without holdings and contribution). Each member is
+Hypothesis draws plans (with and without borrowing, min/max bands, risk-score tables, glide paths,
+human capital terms, rebalancing bands), mixes and members (every preference kind or none, with
+and without holdings, holdings by asset, contribution, years to retirement and income). Each member is
 posted alone to POST .../allocations and, at a random position, inside a batch of random size to
 POST .../allocations/batch. Every answer field must be identical (allocation_id and created_at
 aside), and so must the logged record bytes; each single answer must also equal its GET. The
@@ -93,12 +94,29 @@ def scenarios(draw: st.DrawFn) -> dict[str, Any]:
     table = draw(st.booleans())
     if table:
         policy["risk_score_table"] = {"1": 12.0, "2": 6.0, "3": draw(st.floats(0.0, 4.0))}
+    glide = draw(st.booleans())
+    if glide:
+        policy["glide_path"] = [
+            {"years_to_retirement": 0, "risk_aversion": draw(st.floats(2.0, 20.0))},
+            {"years_to_retirement": draw(st.floats(5.0, 45.0)), "risk_aversion": draw(st.floats(0.0, 8.0))},
+        ]
+    earnings = draw(st.booleans())
+    if earnings:
+        policy["human_capital"] = {
+            "discount_rate": draw(st.sampled_from([None, 0.02, 0.05])),
+            "equity_like_share": draw(st.sampled_from([0.0, 0.2, 1.0])),
+        }
+    policy["rebalance_band"] = draw(st.sampled_from([0.0, 0.05, 0.3]))
     kinds = ["risk_aversion", "target_volatility", "max_loss"] + (["risk_score"] if table else [])
+    kinds += ["glide_path"] if glide else []
     members = []
     for i in range(draw(st.integers(1, 6))):
         kind = draw(st.sampled_from(kinds))
-        if kind == "risk_aversion":
-            pref: dict[str, Any] = {"risk_aversion": draw(st.one_of(st.floats(0.0, 30.0), st.integers(0, 12)))}
+        pref: dict[str, Any] | None
+        if kind == "glide_path":
+            pref = None
+        elif kind == "risk_aversion":
+            pref = {"risk_aversion": draw(st.one_of(st.floats(0.0, 30.0), st.integers(0, 12)))}
         elif kind == "target_volatility":
             pref = {"target_volatility": draw(st.floats(0.0, 0.6))}
         elif kind == "max_loss":
@@ -107,8 +125,23 @@ def scenarios(draw: st.DrawFn) -> dict[str, Any]:
                 pref["horizon_years"] = draw(st.sampled_from([0.5, 1, 3.0, 10]))
         else:
             pref = {"risk_score": draw(st.integers(1, 3))}
-        m: dict[str, Any] = {"member_id": f"m-{i}-{secrets.token_hex(3)}", "preference": pref}
-        if draw(st.booleans()):
+        m: dict[str, Any] = {"member_id": f"m-{i}-{secrets.token_hex(3)}"}
+        if pref is not None:
+            m["preference"] = pref
+        if pref is None or draw(st.booleans()):
+            m["years_to_retirement"] = draw(st.one_of(st.integers(0, 60), st.floats(0.0, 60.0)))
+        by_aversion = kind in ("glide_path", "risk_aversion", "risk_score")
+        if earnings and by_aversion and "years_to_retirement" in m and draw(st.booleans()):
+            m["income"] = {"annual": money(draw(st.integers(0, 2 * 10**7)))}
+            if draw(st.booleans()):
+                m["income"]["growth"] = draw(st.floats(-0.2, 0.2))
+        itemised = draw(st.integers(0, 3)) == 0
+        if itemised:
+            m["holdings_by_asset"] = {a["code"]: money(draw(st.integers(0, 10**8))) for a in mix["assets"]}
+            m["holdings_by_asset"]["safe"] = money(draw(st.integers(0, 10**8)))
+            if draw(st.booleans()):
+                m["contribution"] = money(draw(st.integers(0, 10**7)))
+        elif draw(st.booleans()):
             risky, safe = draw(st.integers(0, 10**9)), draw(st.integers(0, 10**9))
             m["holdings"] = {"risky": money(risky), "safe": draw(st.sampled_from([money(safe), safe // 100]))}
             if draw(st.booleans()):
