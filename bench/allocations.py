@@ -18,6 +18,10 @@ fresh PostgreSQL database), seeds an invented plan, mix and keys over HTTP, then
    batch process. Targets: within 1.5x of the floor, peak memory < 1.5 GB.
 3. Singles during a batch: wrk as in 1. while a second batch of N members runs on the same
    server, for as long as the first batch took. Target: p99 <= 25 ms.
+4. Members as they are (--kinds, or --kinds-only for this alone): N members who state no
+   preference and send years to retirement and income (the plan's glide path and human capital
+   decide) against N members with a risk aversion, same server, alternating, two rounds each.
+   Target: the former within 1.3x of the latter.
 
 Every loop here is bounded in count and time and talks only to 127.0.0.1.
 """
@@ -126,7 +130,11 @@ class Server:
 def seed(server: Server) -> dict[str, str]:
     status, body = call(server.base, "POST", "/v1/plans", OPERATOR,
                         {"plan_id": PLAN, "name": "Bench plan", "currency": "USD",
-                         "policy": {"risk_score_table": {"1": 10.0, "2": 6.0, "3": 3.0}}})
+                         "policy": {"risk_score_table": {"1": 10.0, "2": 6.0, "3": 3.0},
+                                    "glide_path": [{"years_to_retirement": 40, "risk_aversion": 2.0},
+                                                   {"years_to_retirement": 10, "risk_aversion": 5.0},
+                                                   {"years_to_retirement": 0, "risk_aversion": 9.0}],
+                                    "human_capital": {"discount_rate": None, "equity_like_share": 0.1}}})
     assert status == 201, body
     keys = {}
     for role in ("committee", "portal"):
@@ -156,6 +164,35 @@ def members(n: int, seed_value: int = 280) -> list[dict[str, Any]]:
             pref = {"max_loss": round(rng.uniform(0.05, 0.3), 2), "confidence": 0.95}
         out.append({"member_id": f"m-{i:07d}", "amount": f"{rng.randint(100, 900000)}.{rng.randint(0, 99):02d}", "preference": pref})
     return out
+
+
+def aversion_members(n: int, seed_value: int) -> list[dict[str, Any]]:
+    rng = random.Random(seed_value)
+    return [{"member_id": f"a-{seed_value}-{i:07d}", "amount": f"{rng.randint(100, 900000)}.{rng.randint(0, 99):02d}",
+             "preference": {"risk_aversion": rng.choice([1, 2, 3, 4, 5, 6, 8])}} for i in range(n)]
+
+
+def glide_members(n: int, seed_value: int) -> list[dict[str, Any]]:
+    """Invented members who state no preference: years to retirement and an income each."""
+    rng = random.Random(seed_value)
+    return [{"member_id": f"g-{seed_value}-{i:07d}", "amount": f"{rng.randint(100, 900000)}.{rng.randint(0, 99):02d}",
+             "years_to_retirement": rng.randint(0, 45),
+             "income": {"annual": f"{rng.randint(18000, 140000)}.00", "growth": round(rng.uniform(0.0, 0.03), 3)}}
+            for i in range(n)]
+
+
+def bench_member_kinds(server: Server, keys: dict[str, str], n: int, rounds: int = 2) -> dict[str, Any]:
+    """Glide-path members with income against risk-aversion members, alternating on one server."""
+    seconds: dict[str, list[float]] = {"risk_aversion": [], "glide_path_income": []}
+    for r in range(rounds):
+        for name, make in (("risk_aversion", aversion_members), ("glide_path_income", glide_members)):
+            body = orjson.dumps({"mix_version": DEMO_MIX["version"], "members": make(n, 500 + r)})
+            start = time.perf_counter()
+            status, answer = call(server.base, "POST", f"/v1/plans/{PLAN}/allocations/batch", keys["portal"], body)
+            seconds[name].append(time.perf_counter() - start)
+            assert status == 201, answer[:500]
+    a, g = sorted(seconds["risk_aversion"]), sorted(seconds["glide_path_income"])
+    return {"members": n, "seconds": seconds, "ratio_of_best": g[0] / a[0]}
 
 
 def raw_insert_floor(database_url: str, rows: list[tuple[Any, ...]]) -> float:
@@ -320,14 +357,16 @@ def run(label: str, database_url: str, workdir: Path, args: argparse.Namespace) 
         # background for some seconds, which is not the steady state the singles target is about.
         if not shutil.which("wrk"):
             result["singles"] = "wrk not installed (apt-get install wrk)"
-        elif args.seconds:
+        elif args.seconds and not args.kinds_only:
             result["singles"] = bench_singles(server, keys, args.seconds, workdir)
-        if args.members:
+        if args.members and not args.kinds_only:
             result["batch"] = bench_batch(server, keys, database_url, args.members)
             if shutil.which("wrk") and args.seconds:
                 result["singles_during_batch"] = bench_singles_during_batch(
                     server, keys, args.members, result["batch"]["seconds"], workdir
                 )
+        if args.members and (args.kinds or args.kinds_only):
+            result["member_kinds"] = bench_member_kinds(server, keys, args.members)
         return result
     finally:
         server.stop()
@@ -339,6 +378,8 @@ def main() -> None:
     parser.add_argument("--seconds", type=int, default=10, help="each wrk run (0 skips single allocations)")
     parser.add_argument("--postgres", default=None, help="admin URL, e.g. postgresql+psycopg://postgres@127.0.0.1:5432/postgres")
     parser.add_argument("--quick", action="store_true", help="20,000 members, 3 s per wrk run")
+    parser.add_argument("--kinds", action="store_true", help="also glide-path + income members against risk-aversion members")
+    parser.add_argument("--kinds-only", action="store_true", help="only that comparison")
     parser.add_argument("--skip-sqlite", action="store_true", help="only the PostgreSQL run (with --postgres)")
     args = parser.parse_args()
     if args.quick:
@@ -379,6 +420,12 @@ def main() -> None:
         if d:
             print(f"  singles during the batch ({d['batch_seconds']:.2f} s): {d['rps']:.0f} req/s  p50 {d['p50_ms']:.2f} ms  "
                   f"p99 {d['p99_ms']:.2f} ms  non-2xx {d['non_2xx']:.0f}  (target p99 <= 25 ms)")
+        k = r.get("member_kinds")
+        if k:
+            best = {name: min(v) for name, v in k["seconds"].items()}
+            print(f"  {k['members']:,} glide-path members with income: best {best['glide_path_income']:.3f} s; "
+                  f"{k['members']:,} risk-aversion members: best {best['risk_aversion']:.3f} s; "
+                  f"ratio {k['ratio_of_best']:.2f} (target <= 1.3)")
     print("\n" + json.dumps(results, indent=2))
 
 

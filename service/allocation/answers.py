@@ -8,8 +8,11 @@ result names their version.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 import orjson
+from numpy.typing import NDArray
 
 from .disclosures import disclosures_for
 from .explanations import explanation_texts
@@ -23,7 +26,7 @@ def _pair_texts(a: list[str], b: list[str]) -> list[str]:
     return [f'{{"risky":"{x}","safe":"{y}"}}' for x, y in zip(a, b, strict=True)]
 
 
-def _by_asset_texts(codes: tuple[str, ...], flat: list[str]) -> list[str]:
+def _by_asset_texts(codes: Sequence[str], flat: list[str]) -> list[str]:
     k = len(codes)
     if k == 0:
         return []
@@ -32,45 +35,42 @@ def _by_asset_texts(codes: tuple[str, ...], flat: list[str]) -> list[str]:
     return [template.format(*flat[i : i + k]) for i in range(0, len(flat), k)]
 
 
+def _fill(out: list[str], rows: NDArray[np.intp], texts: list[str]) -> None:
+    for i, text in zip(rows.tolist(), texts, strict=True):
+        out[i] += text
+
+
 def _circumstance_texts(ctx: Context, d: Decisions) -> list[str]:
-    """What only some members sent or get: years to retirement, income and the human capital it
-    comes to, holdings by asset and the trades (null within the rebalancing band)."""
+    """What only some members sent or get: years to retirement, the human capital their income
+    comes to (the income itself stays in the record), holdings by asset and the trades (null
+    within the rebalancing band)."""
     n = d.size
     out = [""] * n
     given = ~np.isnan(d.years)
     if given.any():
-        for i, text in zip(np.flatnonzero(given).tolist(), numbers(d.years[given]), strict=True):
-            out[i] += f',"years_to_retirement":{text}'
-    earning = np.not_equal(d.income, NOT_HELD)
-    if earning.any():
-        rows = np.flatnonzero(earning)
-        counted = np.not_equal(d.human_capital[rows], NOT_HELD)
-        annual, value = money_columns(ctx.currency, d.income[rows], np.where(counted, d.human_capital[rows], 0))
+        _fill(out, np.flatnonzero(given), [f',"years_to_retirement":{t}' for t in numbers(d.years[given])])
+    counted = np.not_equal(d.human_capital, NOT_HELD)
+    if counted.any():
+        rows = np.flatnonzero(counted)
+        (value,) = money_columns(ctx.currency, d.human_capital[rows])
         with np.errstate(divide="ignore", invalid="ignore"):
             ratio = d.human_capital[rows] / d.amount[rows].astype(np.float64)
-        (growth,) = number_columns(d.income_growth[rows])
         ratios = numbers(np.where(np.isfinite(ratio), ratio, np.nan))
-        for j, i in enumerate(rows.tolist()):
-            out[i] += f',"income":{{"annual":"{annual[j]}","growth":{growth[j]}}}'
-            if counted[j]:
-                out[i] += f',"human_capital":{{"value":"{value[j]}","ratio_to_account":{ratios[j]}}}'
+        _fill(out, rows, [
+            f',"human_capital":{{"value":"{v}","ratio_to_account":{r}}}' for v, r in zip(value, ratios, strict=True)
+        ])
     if d.itemised.any():
         rows = np.flatnonzero(d.itemised)
-        names = [*ctx.codes, SAFE]
-        width = len(names)
-        held = money_columns(ctx.currency, d.held_assets[rows].reshape(-1))[0]
+        names = (*ctx.codes, SAFE)
+        held = _by_asset_texts(names, money_columns(ctx.currency, d.held_assets[rows].reshape(-1))[0])
         flat = d.trades[rows].reshape(-1)
         # Signed: buys with "+", sales with "-", nothing to do as plain zero.
-        moves = ["+" + t if buy else t for t, buy in zip(money_columns(ctx.currency, flat)[0], (flat > 0).tolist(), strict=True)]
-        keys = [orjson.dumps(name).decode() for name in names]
-        for j, i in enumerate(rows.tolist()):
-            cells = range(j * width, (j + 1) * width)
-            holding = ",".join(f'{key}:"{held[c]}"' for key, c in zip(keys, cells, strict=True))
-            if d.trading[i]:
-                trades = "{" + ",".join(f'{key}:"{moves[c]}"' for key, c in zip(keys, cells, strict=True)) + "}"
-            else:
-                trades = "null"
-            out[i] += f',"holdings_by_asset":{{{holding}}},"trades":{trades}'
+        signed = ["+" + t if buy else t for t, buy in zip(money_columns(ctx.currency, flat)[0], (flat > 0).tolist(), strict=True)]
+        moves = _by_asset_texts(names, signed)
+        trading = d.trading[rows].tolist()
+        _fill(out, rows, [
+            f',"holdings_by_asset":{h},"trades":{m if t else "null"}' for h, m, t in zip(held, moves, trading, strict=True)
+        ])
     return out
 
 

@@ -14,9 +14,13 @@ backslash and the numbers none either, so they go into JSON as they are.
 
 from __future__ import annotations
 
+import re
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+import orjson
 from numpy.typing import NDArray
 from scipy.special import ndtri
 
@@ -42,70 +46,78 @@ _Z = float(ndtri(0.5 + RANGE_COVERAGE / 2))
 
 @dataclass(frozen=True)
 class Wording:
-    asked: dict[int, str]  # by preference kind
-    human: str
-    human_empty: str
-    over: str
-    over_unlimited: str
-    under: str
-    under_unlimited: str
-    split: str
-    split_borrowing: str
-    chance: str
-    outcomes: str
-    outcomes_empty: str
-    riskless: str
-    trades: str
-    no_trades: str
+    """One version's sentences, each a function of the (already rounded) figures it states."""
+
+    asked: dict[int, Callable[..., str]]  # by preference kind
+    human: Callable[[str, str, str, str], str]  # value, currency, ratio, equity-like share
+    human_empty: Callable[[str, str], str]
+    over: Callable[[str, str], str]  # unconstrained, bound
+    over_unlimited: Callable[[str], str]
+    under: Callable[[str, str], str]
+    under_unlimited: Callable[[str], str]
+    split: Callable[[str, str, str, str, str], str]  # y, risky, currency, safe fraction, safe
+    split_borrowing: Callable[[str, str, str, str, str], str]  # y, risky, currency, borrowed fraction, borrowed
+    chance: Callable[[str, str, str], str]  # loss, horizon, chance
+    outcomes: Callable[[str, str, str, str, str], str]  # low, high, currency, low return, high return
+    outcomes_empty: Callable[[str, str], str]
+    riskless: Callable[[str], str]
+    trades: Callable[[str, str, str], str]  # sold, bought, currency
+    no_trades: Callable[[str, str], str]  # held risky fraction, band
 
 
 _WORDING = {
     "2026-12": Wording(
         asked={
-            RISK_AVERSION: "You asked for a risk aversion of {a}.",
-            RISK_SCORE: "Your risk score {score} stands for a risk aversion of {a} in the plan's table.",
-            GLIDE_PATH: "You stated no risk preference, so the plan's glide path set a risk aversion of {a} "
-            "for {years} years to retirement.",
-            TARGET_VOLATILITY: "You asked for a volatility of {target} % a year.",
-            MAX_LOSS: "You asked that the chance of losing more than {loss} % of the account over {horizon} "
-            "stay within {tail} %.",
+            RISK_AVERSION: lambda a: f"You asked for a risk aversion of {a}.",
+            RISK_SCORE: lambda score, a: f"Your risk score {score} stands for a risk aversion of {a} in the plan's table.",
+            GLIDE_PATH: lambda a, years: f"You stated no risk preference, so the plan's glide path set a risk aversion "
+            f"of {a} for {years} to retirement.",
+            TARGET_VOLATILITY: lambda target: f"You asked for a volatility of {target} % a year.",
+            MAX_LOSS: lambda loss, horizon, tail: f"You asked that the chance of losing more than {loss} % of the "
+            f"account over {horizon} stay within {tail} %.",
         },
-        human=" Your future earnings are valued at about {value} {cur}, {ratio} times this account, and {share} % "
-        "of them count as equity-like; counted as wealth, they change how much of the account itself is risky.",
-        human_empty=" Your future earnings are valued at about {value} {cur} beside an account that holds nothing "
-        "yet; counted as wealth, they call for the plan's limit.",
-        over=" That asks for {u} % of the account in the risky mix; the plan's maximum of {y} % applies.",
-        over_unlimited=" That asks for as much risk as the plan allows: its maximum of {y} %.",
-        under=" That asks for {u} % of the account in the risky mix; the plan's minimum of {y} % applies.",
-        under_unlimited=" That asks for as little risk as the plan allows: its minimum of {y} %.",
-        split=" So {y} % of the account ({risky} {cur}) goes to the risky mix and {s} % ({safe} {cur}) to the "
-        "safe holding.",
-        split_borrowing=" So {y} % of the account ({risky} {cur}) goes to the risky mix, {b} % of the account "
-        "({borrowed} {cur}) borrowed at the plan's borrowing rate.",
-        chance=" At this split the chance of losing more than {loss} % over {horizon} is {p} % under the model.",
-        outcomes=" Under the model, one year from now the account would be worth between {lo} and {hi} {cur} in "
-        "95 % of outcomes (a return between {rlo} % and {rhi} %).",
-        outcomes_empty=" Under the model, the return over one year would lie between {rlo} % and {rhi} % in 95 % "
-        "of outcomes.",
-        riskless=" Under the model the account would earn {r} % over one year, without risk.",
-        trades=" Trades selling {sold} {cur} and buying {bought} {cur} bring your holdings to this split.",
-        no_trades=" Your holdings are {held} % risky, within the plan's rebalancing band of {band} percentage "
-        "points of this split, so no trades are proposed.",
+        human=lambda value, cur, ratio, share: f" Your future earnings, about {value} {cur} ({ratio} times this "
+        f"account, {share} % equity-like), count as wealth too.",
+        human_empty=lambda value, cur: f" Your future earnings, about {value} {cur} beside an empty account, count "
+        "as wealth too.",
+        over=lambda u, y: f" That asks for {u} % of the account in the risky mix; the plan's maximum of {y} % applies.",
+        over_unlimited=lambda y: f" That asks for as much risk as the plan allows: its maximum of {y} %.",
+        under=lambda u, y: f" That asks for {u} % of the account in the risky mix; the plan's minimum of {y} % applies.",
+        under_unlimited=lambda y: f" That asks for as little risk as the plan allows: its minimum of {y} %.",
+        split=lambda y, risky, cur, s, safe: f" So {y} % of the account ({risky} {cur}) goes to the risky mix and "
+        f"{s} % ({safe} {cur}) to the safe holding.",
+        split_borrowing=lambda y, risky, cur, b, borrowed: f" So {y} % of the account ({risky} {cur}) goes to the "
+        f"risky mix, {b} % of the account ({borrowed} {cur}) borrowed at the plan's borrowing rate.",
+        chance=lambda loss, horizon, p: f" At this split the chance of losing more than {loss} % over {horizon} is "
+        f"{p} % under the model.",
+        outcomes=lambda lo, hi, cur, rlo, rhi: f" Under the model, in one year the account would be worth {lo} to "
+        f"{hi} {cur} in 95 % of outcomes (a return of {rlo} % to {rhi} %).",
+        outcomes_empty=lambda rlo, rhi: f" Under the model, the return over one year would be {rlo} % to {rhi} % in "
+        "95 % of outcomes.",
+        riskless=lambda r: f" Under the model the account would earn {r} % over one year, without risk.",
+        trades=lambda sold, bought, cur: f" Trades selling {sold} {cur} and buying {bought} {cur} bring your "
+        "holdings to this split.",
+        no_trades=lambda held, band: f" Your holdings are {held} % risky, within the plan's rebalancing band of "
+        f"{band} percentage points of this split, so no trades are proposed.",
     ),
 }
+
+_TRAILING_ZERO = re.compile(r"\.0(?=[,\]])")
 
 
 def _readable(values: NDArray[np.float64], digits: int) -> list[str]:
     """Rounded to `digits` decimals, without a trailing ".0" (and never "-0")."""
-    texts = numbers(np.round(values, digits) + 0.0)
-    return [t[:-2] if t.endswith(".0") else t for t in texts]
+    if not values.size:
+        return []
+    text: str = orjson.dumps(np.round(values, digits) + 0.0, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+    return _TRAILING_ZERO.sub("", text)[1:-1].split(",")
 
 
 def _percent(values: NDArray[np.float64]) -> list[str]:
     return _readable(values * 100.0, 1)
 
 
-def _whole(units: NDArray[np.int64] | NDArray[np.float64], currency: str) -> list[str]:
+def _whole(units: NDArray[Any], currency: str) -> list[str]:
     """Money in whole units of the currency, with thousands separators."""
     whole = np.rint(np.asarray(units, dtype=np.float64) / 10 ** minor_exponent(currency)).astype(np.int64)
     return [f"{v:,}" for v in whole.tolist()]
@@ -115,83 +127,130 @@ def _years(values: NDArray[np.float64]) -> list[str]:
     return [t + (" year" if t == "1" else " years") for t in _readable(values, 1)]
 
 
+class _Column:
+    """One sentence slot of every member's text: "" until a group of rows fills it."""
+
+    def __init__(self, n: int) -> None:
+        self.texts = [""] * n
+
+    def fill(self, rows: NDArray[np.intp], texts: list[str]) -> None:
+        if len(texts) == len(self.texts):  # every row: the usual case of a batch of one kind
+            self.texts = texts
+            return
+        t = self.texts
+        for i, text in zip(rows.tolist(), texts, strict=True):
+            t[i] = text
+
+
 def explanation_texts(ctx: Context, d: Decisions) -> list[str]:
     """The JSON text of every member's `explanation` ({"text", "version"}; null for a record
-    made before explanations were given)."""
+    made before explanations were given). Each sentence is written for the rows it concerns
+    only, from figures computed for those rows only."""
     n = d.size
     if ctx.explanation_version is None:
         return ["null"] * n
     w = _WORDING[ctx.explanation_version]
     cur = ctx.currency
-    kind = d.kind.tolist()
-    a = _readable(d.risk_aversion, 2)
-    value = d.preference_value
-    score = numbers(value.astype(np.int64))
-    years = _readable(d.years, 1)
-    target, loss, tail = _percent(value), _percent(value), _percent(1.0 - d.confidence)
-    horizon = _years(d.horizon)
-    y, s, u = _percent(d.risky_fraction), _percent(1.0 - d.risky_fraction), _percent(d.unconstrained)
-    risky, safe = _whole(d.risky, cur), _whole(d.safe, cur)
-    borrowed, b = _whole(-d.safe, cur), _percent(d.risky_fraction - 1.0)
-    e, v = d.expected_return, d.volatility
-    r_lo, r_hi = e - _Z * v, e + _Z * v
-    rlo, rhi, r = _percent(r_lo), _percent(r_hi), _percent(e)
-    lo, hi = _whole(d.amount * (1.0 + r_lo), cur), _whole(d.amount * (1.0 + r_hi), cur)
-    chance = _percent(loss_chance(value, d.horizon, e, v)) if (d.kind == MAX_LOSS).any() else [""] * n
+    asked, human, bound, split, risk, trades = (_Column(n) for _ in range(6))
+
+    def where(mask: NDArray[np.bool_]) -> NDArray[np.intp] | None:
+        return np.flatnonzero(mask) if mask.any() else None
+
+    kind = d.kind
+    for k, say in w.asked.items():
+        rows = where(kind == k)
+        if rows is None:
+            continue
+        value = d.preference_value[rows]
+        if k == RISK_AVERSION:
+            texts = [say(a) for a in _readable(d.risk_aversion[rows], 2)]
+        elif k == RISK_SCORE:
+            texts = [say(s, a) for s, a in zip(numbers(value.astype(np.int64)), _readable(d.risk_aversion[rows], 2), strict=True)]
+        elif k == GLIDE_PATH:
+            texts = [say(a, y) for a, y in zip(_readable(d.risk_aversion[rows], 2), _years(d.years[rows]), strict=True)]
+        elif k == TARGET_VOLATILITY:
+            texts = [say(t) for t in _percent(value)]
+        else:
+            texts = [say(loss, h, tail) for loss, h, tail in zip(
+                _percent(value), _years(d.horizon[rows]), _percent(1.0 - d.confidence[rows]), strict=True)]
+        asked.fill(rows, texts)
+
+    empty = d.amount == 0
     counted = np.not_equal(d.human_capital, NOT_HELD)
-    if counted.any():
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = _readable(d.human_capital / d.amount.astype(np.float64), 1)
-        human, share = _whole(d.human_capital, cur), _percent(d.equity_like_share)
-    else:
-        ratio = human = share = [""] * n
-    if d.trading.any() or d.itemised.any():
-        sold = _whole(-np.minimum(d.trades, 0).sum(axis=1), cur)
-        bought = _whole(np.maximum(d.trades, 0).sum(axis=1), cur)
-        held_risky = d.held_assets[:, :-1].sum(axis=1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            held = _percent(held_risky / (held_risky + d.held_assets[:, -1]))
-        band = _readable(d.rebalance_band * 100.0, 1)
-    else:
-        sold = bought = held = band = [""] * n
-    asked = w.asked
-    limited = d.limited.tolist()
-    unlimited = np.isnan(d.unconstrained).tolist()
-    borrowing = (d.risky_fraction > 1.0).tolist()
-    riskless = (d.volatility == 0.0).tolist()
-    empty = (d.amount == 0).tolist()
-    counted_rows, itemised, trading = counted.tolist(), d.itemised.tolist(), d.trading.tolist()
+    rows = where(counted & ~empty)
+    if rows is not None:
+        ratio = _readable(d.human_capital[rows] / d.amount[rows].astype(np.float64), 1)
+        human.fill(rows, [w.human(v, cur, r, s) for v, r, s in zip(
+            _whole(d.human_capital[rows], cur), ratio, _percent(d.equity_like_share[rows]), strict=True)])
+    rows = where(counted & empty)
+    if rows is not None:
+        human.fill(rows, [w.human_empty(v, cur) for v in _whole(d.human_capital[rows], cur)])
+
+    unlimited = np.isnan(d.unconstrained)
+    for code, finite, infinite in ((LIMIT_MAX, w.over, w.over_unlimited), (LIMIT_MIN, w.under, w.under_unlimited)):
+        rows = where((d.limited == code) & ~unlimited)
+        if rows is not None:
+            bound.fill(rows, [finite(u, y) for u, y in zip(
+                _percent(d.unconstrained[rows]), _percent(d.risky_fraction[rows]), strict=True)])
+        rows = where((d.limited == code) & unlimited)
+        if rows is not None:
+            bound.fill(rows, [infinite(y) for y in _percent(d.risky_fraction[rows])])
+
+    borrowing = d.risky_fraction > 1.0
+    for mask, say, other in ((~borrowing, w.split, d.safe), (borrowing, w.split_borrowing, -d.safe)):
+        rows = where(mask)
+        if rows is not None:
+            y = d.risky_fraction[rows]
+            rest = 1.0 - y if say is w.split else y - 1.0
+            split.fill(rows, [say(a, b, cur, c, e) for a, b, c, e in zip(
+                _percent(y), _whole(d.risky[rows], cur), _percent(rest), _whole(other[rows], cur), strict=True)])
+
+    e, v = d.expected_return, d.volatility
+    rows = where(kind == MAX_LOSS)
+    if rows is not None:
+        chance = loss_chance(d.preference_value[rows], d.horizon[rows], e[rows], v[rows])
+        risk.fill(rows, [w.chance(loss, h, p) for loss, h, p in zip(
+            _percent(d.preference_value[rows]), _years(d.horizon[rows]), _percent(chance), strict=True)])
+    riskless = v == 0.0
+    rows = where(~riskless & ~empty)
+    if rows is not None:
+        low, high = e[rows] - _Z * v[rows], e[rows] + _Z * v[rows]
+        amount = d.amount[rows].astype(np.float64)
+        outcomes = [w.outcomes(a, b, cur, c, f) for a, b, c, f in zip(
+            _whole(amount * (1.0 + low), cur), _whole(amount * (1.0 + high), cur), _percent(low), _percent(high),
+            strict=True)]
+        _append(risk, rows, outcomes)
+    rows = where(~riskless & empty)
+    if rows is not None:
+        low, high = e[rows] - _Z * v[rows], e[rows] + _Z * v[rows]
+        _append(risk, rows, [w.outcomes_empty(a, b) for a, b in zip(_percent(low), _percent(high), strict=True)])
+    rows = where(riskless)
+    if rows is not None:
+        _append(risk, rows, [w.riskless(r) for r in _percent(e[rows])])
+
+    rows = where(d.trading)
+    if rows is not None:
+        moves = d.trades[rows]
+        trades.fill(rows, [w.trades(s, b, cur) for s, b in zip(
+            _whole(-np.minimum(moves, 0).sum(axis=1), cur), _whole(np.maximum(moves, 0).sum(axis=1), cur), strict=True)])
+    rows = where(d.itemised & ~d.trading)
+    if rows is not None:
+        held = d.held_assets[rows]
+        held_risky = held[:, :-1].sum(axis=1)
+        trades.fill(rows, [w.no_trades(h, b) for h, b in zip(
+            _percent(held_risky / (held_risky + held[:, -1])), _readable(d.rebalance_band[rows] * 100.0, 1), strict=True)])
+
     version = ctx.explanation_version
-    out = []
-    for i in range(n):
-        k = kind[i]
-        text = asked[k].format(a=a[i], score=score[i], years=years[i], target=target[i], loss=loss[i],
-                               horizon=horizon[i], tail=tail[i])
-        if counted_rows[i]:
-            if empty[i]:
-                text += w.human_empty.format(value=human[i], cur=cur)
-            else:
-                text += w.human.format(value=human[i], cur=cur, ratio=ratio[i], share=share[i])
-        bound = limited[i]
-        if bound == LIMIT_MAX:
-            text += (w.over_unlimited if unlimited[i] else w.over).format(u=u[i], y=y[i])
-        elif bound == LIMIT_MIN:
-            text += (w.under_unlimited if unlimited[i] else w.under).format(u=u[i], y=y[i])
-        if borrowing[i]:
-            text += w.split_borrowing.format(y=y[i], risky=risky[i], cur=cur, b=b[i], borrowed=borrowed[i])
-        else:
-            text += w.split.format(y=y[i], risky=risky[i], cur=cur, s=s[i], safe=safe[i])
-        if k == MAX_LOSS:
-            text += w.chance.format(loss=loss[i], horizon=horizon[i], p=chance[i])
-        if riskless[i]:
-            text += w.riskless.format(r=r[i])
-        elif empty[i]:
-            text += w.outcomes_empty.format(rlo=rlo[i], rhi=rhi[i])
-        else:
-            text += w.outcomes.format(lo=lo[i], hi=hi[i], cur=cur, rlo=rlo[i], rhi=rhi[i])
-        if trading[i]:
-            text += w.trades.format(sold=sold[i], bought=bought[i], cur=cur)
-        elif itemised[i]:
-            text += w.no_trades.format(held=held[i], band=band[i])
-        out.append(f'{{"text":"{text}","version":"{version}"}}')
-    return out
+    return [
+        f'{{"text":"{a}{h}{b}{s}{r}{t}","version":"{version}"}}'
+        for a, h, b, s, r, t in zip(asked.texts, human.texts, bound.texts, split.texts, risk.texts, trades.texts, strict=True)
+    ]
+
+
+def _append(column: _Column, rows: NDArray[np.intp], texts: list[str]) -> None:
+    if len(texts) == len(column.texts):
+        column.texts = [a + b for a, b in zip(column.texts, texts, strict=True)]
+        return
+    t = column.texts
+    for i, text in zip(rows.tolist(), texts, strict=True):
+        t[i] += text

@@ -421,11 +421,6 @@ class HumanCapitalOut(BaseModel):
     ratio_to_account: float | None = Field(description="value / account; null when the account is empty")
 
 
-class IncomeOut(BaseModel):
-    annual: str
-    growth: float
-
-
 class _AnswerFields(BaseModel):
     allocation_id: str
     plan_id: str
@@ -459,7 +454,6 @@ class _AnswerFields(BaseModel):
     after_contribution: MoneySplitOut | None = None
     explanation: ExplanationOut | None = Field(description="null only for records made before explanations")
     years_to_retirement: float | None = None
-    income: IncomeOut | None = None
     human_capital: HumanCapitalOut | None = None
     holdings_by_asset: dict[str, str] | None = None
     trades: dict[str, str] | None = Field(

@@ -286,8 +286,8 @@ def test_the_explanation_carries_the_numbers_of_the_answer() -> None:
     # The one-year range at 95 % of a normal return with the split's mean and volatility.
     z = norm.ppf(0.975)
     e, v = a["expected_return"], a["volatility"]
-    assert f"between {percent(e - z * v)} % and {percent(e + z * v)} %" in text
-    assert f"between {whole(25000 * (1 + e - z * v))} and {whole(25000 * (1 + e + z * v))} USD" in text
+    assert f"a return of {percent(e - z * v)} % to {percent(e + z * v)} %" in text
+    assert f"worth {whole(25000 * (1 + e - z * v))} to {whole(25000 * (1 + e + z * v))} USD" in text
 
 
 def test_the_explanation_of_a_loss_bound_gives_the_chance_of_that_loss() -> None:
