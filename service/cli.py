@@ -86,7 +86,7 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     from service.api.metrics import Metrics
     from service.api.schemas import MixIn
     from service.api.state import AppState
-    from service.demo import DEMO_ALLOCATION, DEMO_MIX, DEMO_PLAN
+    from service.demo import DEMO_MEMBERS, DEMO_MIX, DEMO_PLAN
     from service.store import (
         get_plan,
         insert_key,
@@ -142,10 +142,11 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     print(f"portal key     {secrets_by_role['portal']}")
     print(f"operator key   {secrets_by_role['operator']}  (demo only: every plan)")
     print(f"(these keys expire at {rfc3339(expires_at)})")
-    print("\ntry:")
-    print(f"  curl -s -X POST {base}/v1/plans/{plan.plan_id}/allocations \\\n"
-          f"    -H 'Authorization: Bearer {secrets_by_role['portal']}' -H 'Content-Type: application/json' \\\n"
-          f"    -d '{json.dumps(DEMO_ALLOCATION)}'")
+    print("\ntry (a member with a risk aversion, one the glide path and income decide, one with drifted holdings):")
+    for member in DEMO_MEMBERS:
+        print(f"  curl -s -X POST {base}/v1/plans/{plan.plan_id}/allocations \\\n"
+              f"    -H 'Authorization: Bearer {secrets_by_role['portal']}' -H 'Content-Type: application/json' \\\n"
+              f"    -d '{json.dumps(member)}'")
     print("\nAll figures are invented demo assumptions; a split is not individual advice.\n", flush=True)
     _serve(settings, host, port, migrate=True)
     return 0

@@ -15,6 +15,15 @@ DEMO_PLAN: dict[str, Any] = {
         "min_risky_fraction": 0.0,
         "max_risky_fraction": 1.0,
         "risk_score_table": {"1": 12.0, "2": 8.0, "3": 5.0, "4": 3.5, "5": 2.0},
+        # Members who answer no questionnaire: more risk far from retirement, less near it.
+        "glide_path": [
+            {"years_to_retirement": 40, "risk_aversion": 2.5},
+            {"years_to_retirement": 20, "risk_aversion": 4.0},
+            {"years_to_retirement": 0, "risk_aversion": 9.0},
+        ],
+        # Transit wages are steady: a tenth of them counted as equity-like.
+        "human_capital": {"discount_rate": None, "equity_like_share": 0.1},
+        "rebalance_band": 0.05,
     },
 }
 
@@ -52,3 +61,26 @@ DEMO_ALLOCATION: dict[str, Any] = {
     "amount": "48250.00",
     "preference": {"risk_aversion": 6},
 }
+
+# Invented members as they are: one who states no preference (the glide path decides) and sends
+# an income, and one whose holdings drifted from the split.
+DEMO_MEMBERS: list[dict[str, Any]] = [
+    DEMO_ALLOCATION,
+    {
+        "member_id": "m-002286",
+        "mix_version": "2026-q4",
+        "amount": "18400.00",
+        "years_to_retirement": 27,
+        "income": {"annual": "51500.00", "growth": 0.015},
+    },
+    {
+        "member_id": "m-003051",
+        "mix_version": "2026-q4",
+        "preference": {"risk_score": 3},
+        "holdings_by_asset": {
+            "HARBOR_EQ": "21000.00", "FARSHORE_EQ": "9000.00", "FRONTIER_EQ": "4000.00",
+            "CIVIC_BOND": "3000.00", "GUILD_CREDIT": "0.00", "TIMBERLAND": "2500.00", "safe": "6500.00",
+        },
+        "contribution": "400.00",
+    },
+]

@@ -144,3 +144,16 @@ async def test_no_preference_without_a_glide_path_names_preference(world: World,
                                 json={"member_id": "x", "mix_version": VERSION, "amount": "5.00", "years_to_retirement": 3},
                                 headers=keys["portal"])
     assert r.status_code == 422 and [e["field"] for e in r.json()["errors"]] == ["preference"]
+
+
+async def test_the_demo_members_are_answered_on_the_demo_plan(world: World, new_plan_id: str) -> None:
+    from service.demo import DEMO_MEMBERS, DEMO_PLAN
+
+    keys = await world.plan(new_plan_id, **DEMO_PLAN["policy"])
+    await world.publish(new_plan_id, keys)
+    sources = []
+    for member in DEMO_MEMBERS:
+        r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=member, headers=keys["portal"])
+        assert r.status_code == 201, r.text
+        sources.append((r.json()["preference_source"], "human_capital" in r.json(), r.json().get("trades") is not None))
+    assert sources == [("member", False, False), ("glide_path", True, False), ("member", False, True)]
