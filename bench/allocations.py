@@ -192,7 +192,8 @@ def bench_member_kinds(server: Server, keys: dict[str, str], n: int, rounds: int
             seconds[name].append(time.perf_counter() - start)
             assert status == 201, answer[:500]
     a, g = sorted(seconds["risk_aversion"]), sorted(seconds["glide_path_income"])
-    return {"members": n, "seconds": seconds, "ratio_of_best": g[0] / a[0]}
+    return {"members": n, "seconds": seconds, "ratio_of_best": g[0] / a[0], "peak_rss_mb": server.peak_rss_mb(),
+            "batch_process_peak_rss_mb": server.children_peak_rss_mb()}
 
 
 def raw_insert_floor(database_url: str, rows: list[tuple[Any, ...]]) -> float:
@@ -425,7 +426,8 @@ def main() -> None:
             best = {name: min(v) for name, v in k["seconds"].items()}
             print(f"  {k['members']:,} glide-path members with income: best {best['glide_path_income']:.3f} s; "
                   f"{k['members']:,} risk-aversion members: best {best['risk_aversion']:.3f} s; "
-                  f"ratio {k['ratio_of_best']:.2f} (target <= 1.3)")
+                  f"ratio {k['ratio_of_best']:.2f} (target <= 1.3); peak RSS: server {k['peak_rss_mb']:.0f} MB, "
+                  f"batch process {k['batch_process_peak_rss_mb']:.0f} MB")
     print("\n" + json.dumps(results, indent=2))
 
 

@@ -36,6 +36,9 @@ def _by_asset_texts(codes: Sequence[str], flat: list[str]) -> list[str]:
 
 
 def _fill(out: list[str], rows: NDArray[np.intp], texts: list[str]) -> None:
+    if len(texts) == len(out):  # every row
+        out[:] = [a + b for a, b in zip(out, texts, strict=True)]
+        return
     for i, text in zip(rows.tolist(), texts, strict=True):
         out[i] += text
 

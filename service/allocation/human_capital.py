@@ -20,8 +20,6 @@ in the risky mix (then the plan's band bounds it, as for every member).
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 from numpy.typing import NDArray
 
@@ -68,17 +66,17 @@ def check_income(
     preference by risk aversion: a target volatility or a loss bound is about the account itself."""
     if not income_given.any():
         return []
-    rows = np.flatnonzero(income_given).tolist()
     if policy.human_capital is None:
-        return [FieldIssue(i, "income", "this plan's policy has no human_capital: future earnings are not counted") for i in rows]
-    found: list[FieldIssue] = []
-    for i in rows:
-        if math.isnan(years[i]):
-            found.append(FieldIssue(i, "years_to_retirement", "required with income: the years it is still earned"))
-        if kind[i] in (TARGET_VOLATILITY, MAX_LOSS):
-            found.append(FieldIssue(
-                i, "income",
-                f"counts only with a preference by risk aversion (risk_aversion, risk_score or the glide path); "
-                f"{KIND_NAMES[kind[i]]} states the account's own risk",
-            ))
+        reason = "this plan's policy has no human_capital: future earnings are not counted"
+        return [FieldIssue(i, "income", reason) for i in np.flatnonzero(income_given).tolist()]
+    found = [
+        FieldIssue(i, "years_to_retirement", "required with income: the years it is still earned")
+        for i in np.flatnonzero(income_given & np.isnan(years)).tolist()
+    ]
+    for i in np.flatnonzero(income_given & ((kind == TARGET_VOLATILITY) | (kind == MAX_LOSS))).tolist():
+        found.append(FieldIssue(
+            i, "income",
+            f"counts only with a preference by risk aversion (risk_aversion, risk_score or the glide path); "
+            f"{KIND_NAMES[kind[i]]} states the account's own risk",
+        ))
     return found

@@ -159,7 +159,23 @@ def read_members(items: Sequence[Any], currency: str, codes: Sequence[str] = ())
         amounts[i] = m.get("amount")
         contributions[i] = m.get("contribution")
         if not keys <= basic:
-            _circumstances(i, m, years, income_rows, incomes, growth, issues)
+            # The common shapes inline (a number of years, an income of annual and growth); the
+            # rest, and every mistake, through _circumstances.
+            y = m.get("years_to_retirement")
+            income = m.get("income")
+            if (type(y) is int or type(y) is float) and (
+                income is None or (
+                    type(income) is dict and len(income) == 2 and type(g := income.get("growth")) is float
+                    and MIN_INCOME_GROWTH <= g <= MAX_INCOME_GROWTH and income.get("annual") is not None
+                )
+            ):
+                years[i] = y
+                if income is not None:
+                    income_rows.append(i)
+                    incomes.append(income["annual"])
+                    growth[i] = g
+            else:
+                _circumstances(i, m, years, income_rows, incomes, growth, issues)
             by_asset = m.get("holdings_by_asset")
             if by_asset is not None:
                 if type(by_asset) is not dict or by_asset.keys() != itemised_keys:
@@ -216,10 +232,10 @@ def read_members(items: Sequence[Any], currency: str, codes: Sequence[str] = ())
         income[income_rows] = units
         issues += [FieldIssue(income_rows[j], "income.annual", reason) for j, reason in problems]
     preferences = PreferenceColumns(
-        np.array(kind, dtype=np.int8), np.array(value), np.array(confidence), np.array(horizon), np.array(years)
+        np.array(kind, dtype=np.int8), np.array(value), np.array(confidence), np.array(horizon), np.array(years, dtype=np.float64)
     )
     members = Members(
-        [str(x) for x in ids], preferences, total, held_r, held_s, contribution, income, np.array(growth), held_assets
+        [str(x) for x in ids], preferences, total, held_r, held_s, contribution, income, np.array(growth, dtype=np.float64), held_assets
     )
     return members, issues
 

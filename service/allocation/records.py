@@ -168,18 +168,27 @@ def _member_facts(d: Decisions) -> tuple[list[str], list[str], list[str]]:
         annual, value = number_columns(d.income[rows], d.human_capital[rows])
         growth, rate, share = number_columns(d.income_growth[rows], d.discount_rate[rows], d.equity_like_share[rows])
         counted = np.not_equal(d.human_capital[rows], NOT_HELD).tolist()
-        for j, i in enumerate(rows.tolist()):
-            human = (
-                f'"human_capital":{{"discount_rate":{rate[j]},"equity_like_share":{share[j]},"value_minor":{value[j]}}},'
-                if counted[j] else ""
-            )
-            earnings[i] = f'{human}"income":{{"annual_minor":{annual[j]},"growth":{growth[j]}}},'
+        texts = [
+            (f'"human_capital":{{"discount_rate":{r},"equity_like_share":{s},"value_minor":{v}}},' if c else "")
+            + f'"income":{{"annual_minor":{a},"growth":{g}}},'
+            for a, v, g, r, s, c in zip(annual, value, growth, rate, share, counted, strict=True)
+        ]
+        earnings = _placed(n, rows, texts)
     given = ~np.isnan(d.years)
     if given.any():
         rows = np.flatnonzero(given)
-        for i, text in zip(rows.tolist(), numbers(d.years[rows]), strict=True):
-            years[i] = f',"years_to_retirement":{text}'
+        years = _placed(n, rows, [f',"years_to_retirement":{t}' for t in numbers(d.years[rows])])
     return itemised, earnings, years
+
+
+def _placed(n: int, rows: NDArray[np.intp], texts: list[str]) -> list[str]:
+    """n texts: `texts` at `rows`, "" elsewhere."""
+    if len(texts) == n:
+        return texts
+    out = [""] * n
+    for i, text in zip(rows.tolist(), texts, strict=True):
+        out[i] = text
+    return out
 
 
 def _rebalancing(d: Decisions) -> tuple[list[str], list[str]]:
