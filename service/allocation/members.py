@@ -173,7 +173,7 @@ def read_members(items: Sequence[Any], currency: str, codes: Sequence[str] = ())
                 if income is not None:
                     income_rows.append(i)
                     incomes.append(income["annual"])
-                    growth[i] = g
+                    growth[i] = income["growth"]
             else:
                 _circumstances(i, m, years, income_rows, incomes, growth, issues)
             by_asset = m.get("holdings_by_asset")
