@@ -34,6 +34,7 @@ from .preferences import (
     RISK_AVERSION,
     RISK_SCORE,
     TARGET_VOLATILITY,
+    kinds_present,
     loss_chance,
 )
 from .records import Context, Decisions
@@ -105,26 +106,29 @@ _WORDING = {
 _TRAILING_ZERO = re.compile(r"\.0(?=[,\]])")
 
 
-def _readable(values: NDArray[np.float64], digits: int) -> list[str]:
-    """Rounded to `digits` decimals, without a trailing ".0" (and never "-0")."""
-    if not values.size:
-        return []
-    text: str = orjson.dumps(np.round(values, digits) + 0.0, option=orjson.OPT_SERIALIZE_NUMPY).decode()
-    return _TRAILING_ZERO.sub("", text)[1:-1].split(",")
+def _readable(digits: int, *columns: NDArray[np.float64]) -> list[list[str]]:
+    """Each column rounded to `digits` decimals, without a trailing ".0" (and never "-0"); one
+    text conversion for all the columns (they are of one length)."""
+    if not columns[0].size:
+        return [[] for _ in columns]
+    both = np.round(np.stack(columns), digits) + 0.0
+    text: str = orjson.dumps(both, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+    return [row.split(",") for row in _TRAILING_ZERO.sub("", text)[2:-2].split("],[")]
 
 
-def _percent(values: NDArray[np.float64]) -> list[str]:
-    return _readable(values * 100.0, 1)
+def _percent(*columns: NDArray[np.float64]) -> list[list[str]]:
+    return _readable(1, *(c * 100.0 for c in columns))
 
 
-def _whole(units: NDArray[Any], currency: str) -> list[str]:
+def _whole(currency: str, *columns: NDArray[Any]) -> list[list[str]]:
     """Money in whole units of the currency, with thousands separators."""
-    whole = np.rint(np.asarray(units, dtype=np.float64) / 10 ** minor_exponent(currency)).astype(np.int64)
-    return [f"{v:,}" for v in whole.tolist()]
+    scale = 10 ** minor_exponent(currency)
+    whole = np.rint(np.stack([np.asarray(c, dtype=np.float64) for c in columns]) / scale).astype(np.int64)
+    return [[f"{v:,}" for v in row] for row in whole.tolist()]
 
 
 def _years(values: NDArray[np.float64]) -> list[str]:
-    return [t + (" year" if t == "1" else " years") for t in _readable(values, 1)]
+    return [t + (" year" if t == "1" else " years") for t in _readable(1, values)[0]]
 
 
 class _Column:
@@ -145,100 +149,108 @@ class _Column:
 def explanation_texts(ctx: Context, d: Decisions) -> list[str]:
     """The JSON text of every member's `explanation` ({"text", "version"}; null for a record
     made before explanations were given). Each sentence is written for the rows it concerns
-    only, from figures computed for those rows only."""
+    only, from figures computed for those rows only, each kind of figure converted to text in
+    one call for all of them."""
     n = d.size
     if ctx.explanation_version is None:
         return ["null"] * n
     w = _WORDING[ctx.explanation_version]
     cur = ctx.currency
     asked, human, bound, split, risk, trades = (_Column(n) for _ in range(6))
+    everyone = np.arange(n)
 
     def where(mask: NDArray[np.bool_]) -> NDArray[np.intp] | None:
-        return np.flatnonzero(mask) if mask.any() else None
+        if not mask.any():
+            return None
+        return everyone if mask.all() else np.flatnonzero(mask)
 
     kind = d.kind
+    present = kinds_present(kind).tolist()
     for k, say in w.asked.items():
-        rows = where(kind == k)
+        rows = where(kind == k) if present[k] else None
         if rows is None:
             continue
         value = d.preference_value[rows]
         if k == RISK_AVERSION:
-            texts = [say(a) for a in _readable(d.risk_aversion[rows], 2)]
+            texts = [say(a) for a in _readable(2, d.risk_aversion[rows])[0]]
         elif k == RISK_SCORE:
-            texts = [say(s, a) for s, a in zip(numbers(value.astype(np.int64)), _readable(d.risk_aversion[rows], 2), strict=True)]
+            texts = [say(s, a) for s, a in zip(numbers(value.astype(np.int64)), _readable(2, d.risk_aversion[rows])[0], strict=True)]
         elif k == GLIDE_PATH:
-            texts = [say(a, y) for a, y in zip(_readable(d.risk_aversion[rows], 2), _years(d.years[rows]), strict=True)]
+            texts = [say(a, y) for a, y in zip(_readable(2, d.risk_aversion[rows])[0], _years(d.years[rows]), strict=True)]
         elif k == TARGET_VOLATILITY:
-            texts = [say(t) for t in _percent(value)]
+            texts = [say(t) for t in _percent(value)[0]]
         else:
-            texts = [say(loss, h, tail) for loss, h, tail in zip(
-                _percent(value), _years(d.horizon[rows]), _percent(1.0 - d.confidence[rows]), strict=True)]
+            loss, tail = _percent(value, 1.0 - d.confidence[rows])
+            texts = [say(a, h, t) for a, h, t in zip(loss, _years(d.horizon[rows]), tail, strict=True)]
         asked.fill(rows, texts)
 
     empty = d.amount == 0
     counted = np.not_equal(d.human_capital, NOT_HELD)
-    rows = where(counted & ~empty)
-    if rows is not None:
-        ratio = _readable(d.human_capital[rows] / d.amount[rows].astype(np.float64), 1)
-        human.fill(rows, [w.human(v, cur, r, s) for v, r, s in zip(
-            _whole(d.human_capital[rows], cur), ratio, _percent(d.equity_like_share[rows]), strict=True)])
-    rows = where(counted & empty)
-    if rows is not None:
-        human.fill(rows, [w.human_empty(v, cur) for v in _whole(d.human_capital[rows], cur)])
-
-    unlimited = np.isnan(d.unconstrained)
-    for code, finite, infinite in ((LIMIT_MAX, w.over, w.over_unlimited), (LIMIT_MIN, w.under, w.under_unlimited)):
-        rows = where((d.limited == code) & ~unlimited)
+    if counted.any():
+        rows = where(counted & ~empty)
         if rows is not None:
-            bound.fill(rows, [finite(u, y) for u, y in zip(
-                _percent(d.unconstrained[rows]), _percent(d.risky_fraction[rows]), strict=True)])
-        rows = where((d.limited == code) & unlimited)
+            (ratio,) = _readable(1, d.human_capital[rows] / d.amount[rows].astype(np.float64))
+            (value_text,) = _whole(cur, d.human_capital[rows])
+            (share,) = _percent(d.equity_like_share[rows])
+            human.fill(rows, [w.human(v, cur, r, s) for v, r, s in zip(value_text, ratio, share, strict=True)])
+        rows = where(counted & empty)
         if rows is not None:
-            bound.fill(rows, [infinite(y) for y in _percent(d.risky_fraction[rows])])
+            human.fill(rows, [w.human_empty(v, cur) for v in _whole(cur, d.human_capital[rows])[0]])
 
-    borrowing = d.risky_fraction > 1.0
-    for mask, say, other in ((~borrowing, w.split, d.safe), (borrowing, w.split_borrowing, -d.safe)):
-        rows = where(mask)
+    limits = np.bincount(d.limited, minlength=3).tolist()
+    if limits[LIMIT_MAX] or limits[LIMIT_MIN]:
+        unlimited = np.isnan(d.unconstrained)
+        for code, finite, infinite in ((LIMIT_MAX, w.over, w.over_unlimited), (LIMIT_MIN, w.under, w.under_unlimited)):
+            if not limits[code]:
+                continue
+            rows = where((d.limited == code) & ~unlimited)
+            if rows is not None:
+                wanted, given = _percent(d.unconstrained[rows], d.risky_fraction[rows])
+                bound.fill(rows, [finite(a, b) for a, b in zip(wanted, given, strict=True)])
+            rows = where((d.limited == code) & unlimited)
+            if rows is not None:
+                bound.fill(rows, [infinite(t) for t in _percent(d.risky_fraction[rows])[0]])
+
+    # The split and the one-year range concern (nearly) every row: their figures are converted for
+    # all rows at once, and each row's sentence is chosen by its flags.
+    y, e, v = d.risky_fraction, d.expected_return, d.volatility
+    borrowing = y > 1.0
+    low, high = e - _Z * v, e + _Z * v
+    amount = d.amount.astype(np.float64)
+    fractions, rests, rlo, rhi, r = _percent(y, np.where(borrowing, y - 1.0, 1.0 - y), low, high, e)
+    risky, others, worth_low, worth_high = _whole(
+        cur, d.risky, np.where(borrowing, -d.safe, d.safe), amount * (1.0 + low), amount * (1.0 + high)
+    )
+    split.texts = [
+        (w.split_borrowing if b else w.split)(a, c, cur, f, g)
+        for b, a, c, f, g in zip(borrowing.tolist(), fractions, risky, rests, others, strict=True)
+    ]
+    if present[MAX_LOSS]:
+        rows = where(kind == MAX_LOSS)
+        assert rows is not None
+        loss_value = d.preference_value[rows]
+        losses, chances = _percent(loss_value, loss_chance(loss_value, d.horizon[rows], e[rows], v[rows]))
+        risk.fill(rows, [w.chance(a, h, p) for a, h, p in zip(losses, _years(d.horizon[rows]), chances, strict=True)])
+    outcomes = [
+        w.riskless(g) if none else w.outcomes_empty(c, f) if nothing else w.outcomes(a, b, cur, c, f)
+        for none, nothing, a, b, c, f, g in zip(
+            (v == 0.0).tolist(), empty.tolist(), worth_low, worth_high, rlo, rhi, r, strict=True)
+    ]
+    _append(risk, everyone, outcomes)
+
+    if d.itemised.any():
+        rows = where(d.trading)
         if rows is not None:
-            y = d.risky_fraction[rows]
-            rest = 1.0 - y if say is w.split else y - 1.0
-            split.fill(rows, [say(a, b, cur, c, e) for a, b, c, e in zip(
-                _percent(y), _whole(d.risky[rows], cur), _percent(rest), _whole(other[rows], cur), strict=True)])
-
-    e, v = d.expected_return, d.volatility
-    rows = where(kind == MAX_LOSS)
-    if rows is not None:
-        chance = loss_chance(d.preference_value[rows], d.horizon[rows], e[rows], v[rows])
-        risk.fill(rows, [w.chance(loss, h, p) for loss, h, p in zip(
-            _percent(d.preference_value[rows]), _years(d.horizon[rows]), _percent(chance), strict=True)])
-    riskless = v == 0.0
-    rows = where(~riskless & ~empty)
-    if rows is not None:
-        low, high = e[rows] - _Z * v[rows], e[rows] + _Z * v[rows]
-        amount = d.amount[rows].astype(np.float64)
-        outcomes = [w.outcomes(a, b, cur, c, f) for a, b, c, f in zip(
-            _whole(amount * (1.0 + low), cur), _whole(amount * (1.0 + high), cur), _percent(low), _percent(high),
-            strict=True)]
-        _append(risk, rows, outcomes)
-    rows = where(~riskless & empty)
-    if rows is not None:
-        low, high = e[rows] - _Z * v[rows], e[rows] + _Z * v[rows]
-        _append(risk, rows, [w.outcomes_empty(a, b) for a, b in zip(_percent(low), _percent(high), strict=True)])
-    rows = where(riskless)
-    if rows is not None:
-        _append(risk, rows, [w.riskless(r) for r in _percent(e[rows])])
-
-    rows = where(d.trading)
-    if rows is not None:
-        moves = d.trades[rows]
-        trades.fill(rows, [w.trades(s, b, cur) for s, b in zip(
-            _whole(-np.minimum(moves, 0).sum(axis=1), cur), _whole(np.maximum(moves, 0).sum(axis=1), cur), strict=True)])
-    rows = where(d.itemised & ~d.trading)
-    if rows is not None:
-        held = d.held_assets[rows]
-        held_risky = held[:, :-1].sum(axis=1)
-        trades.fill(rows, [w.no_trades(h, b) for h, b in zip(
-            _percent(held_risky / (held_risky + held[:, -1])), _readable(d.rebalance_band[rows] * 100.0, 1), strict=True)])
+            moves = d.trades[rows]
+            sold, bought = _whole(cur, -np.minimum(moves, 0).sum(axis=1), np.maximum(moves, 0).sum(axis=1))
+            trades.fill(rows, [w.trades(a, b, cur) for a, b in zip(sold, bought, strict=True)])
+        rows = where(d.itemised & ~d.trading)
+        if rows is not None:
+            held = d.held_assets[rows]
+            held_risky = held[:, :-1].sum(axis=1)
+            (fraction,) = _percent(held_risky / (held_risky + held[:, -1]))
+            (band,) = _readable(1, d.rebalance_band[rows] * 100.0)
+            trades.fill(rows, [w.no_trades(h, b) for h, b in zip(fraction, band, strict=True)])
 
     version = ctx.explanation_version
     return [
