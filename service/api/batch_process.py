@@ -45,7 +45,7 @@ class BatchConversation:
         self._process = process
         self._conn = conn
         self._open = True
-        self.body = b""
+        self.body: bytes | memoryview = b""
 
     def _answer(self) -> tuple[Any, ...]:
         try:
@@ -70,28 +70,33 @@ class BatchConversation:
         self._conn.send(("decide", on))
         return int(self._answer()[1])
 
-    def puller(self, completion: Callable[[bytes], IdempotencyCompletion | None]) -> Callable[[float], Any]:
+    def puller(self, completion: Callable[[memoryview], IdempotencyCompletion | None]) -> Callable[[float], Any]:
         """For a LogStream the log writer pulls from: asks the child to write, then hands over each
         chunk of records as it arrives and, last, Finished with `completion(answer)`. The answer
         body is then `self.body`. The writer thread reads the pipe itself: no thread between."""
         self._conn.send(("write",))
-        head = b""
-        results: list[bytes] = []
+        # The answer grows in one buffer as chunks arrive (a large bytearray grows in place), so
+        # that a 300,000-member answer is held once, not as chunks plus their join.
+        answer = bytearray()
+        results = 0
 
         def pull(timeout: float) -> Any:
-            nonlocal head
+            nonlocal results
             while True:
                 if not self._conn.poll(timeout):
                     return None
                 message = self._answer()
                 if message[0] == "head":
-                    head = message[1]
+                    answer[:0] = message[1]
                     continue
                 if message[0] == "rows":
-                    results.append(message[4])
+                    if results:
+                        answer.extend(b",")
+                    answer.extend(message[4])
+                    results += 1
                     return message[1], message[2], message[3]
-                self.body = head + b",".join(results) + BATCH_TAIL
-                results.clear()
+                answer.extend(BATCH_TAIL)
+                self.body = memoryview(answer)
                 self._open = False
                 return Finished(completion(self.body))
 

@@ -57,9 +57,9 @@ class Claim:
     reserved_at: int  # unix seconds: names this owner's reservation
     retention_seconds: int
 
-    def completion(self, status_code: int, response: bytes) -> IdempotencyCompletion:
+    def completion(self, status_code: int, response: bytes | memoryview) -> IdempotencyCompletion:
         return IdempotencyCompletion(
-            self.plan_id, self.key_id, self.key, status_code, response.decode(),
+            self.plan_id, self.key_id, self.key, status_code, str(response, "utf-8"),
             reserved_at=self.reserved_at, expires_at=int(time.time()) + self.retention_seconds,
         )
 

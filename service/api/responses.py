@@ -32,7 +32,7 @@ def json_response(
     )
 
 
-def raw_json_response(body: bytes, status_code: int = 200, headers: dict[str, str] | None = None) -> Response:
+def raw_json_response(body: bytes | memoryview, status_code: int = 200, headers: dict[str, str] | None = None) -> Response:
     return Response(body, status_code=status_code, media_type="application/json", headers=headers)
 
 
