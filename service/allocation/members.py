@@ -101,6 +101,8 @@ def _preference(p: Any) -> tuple[int, float, float, float] | tuple[str, str]:
     kind = kinds[0]
     value = p[kind]
     if kind == "risk_score":
+        if type(value) is float and value.is_integer():
+            value = int(value)  # 4.0 is the integer 4 (JSON Schema's integer too)
         if type(value) is not int:
             return "preference.risk_score", "must be an integer score of the plan's risk_score_table"
     elif not _number(value):

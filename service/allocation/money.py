@@ -26,6 +26,10 @@ _EXPONENTS = {
 }
 # Well above any account, below where float arithmetic on minor units stops being exact (2**53).
 MAX_MINOR_UNITS = 10**15
+# An amount given as text: digits, optionally a point and more digits (no sign, exponent, spaces
+# or separators). The OpenAPI declares the same pattern.
+AMOUNT_PATTERN = r"[0-9]+(?:\.[0-9]+)?"
+_AMOUNT_TEXT = re.compile(AMOUNT_PATTERN)
 
 
 def minor_exponent(currency: str) -> int:
@@ -38,8 +42,12 @@ def parse_amount(value: Any, currency: str) -> int:
     Raises ValueError with the reason (the caller names the field)."""
     if isinstance(value, bool) or not isinstance(value, str | int | float):
         raise ValueError('must be a decimal string such as "1250.00" or a number')
+    if isinstance(value, str) and not _AMOUNT_TEXT.fullmatch(value):
+        if value.startswith("-") and _AMOUNT_TEXT.fullmatch(value[1:]):
+            raise ValueError("must not be negative")
+        raise ValueError('is not a decimal number such as "1250.00" (digits, optionally a point and decimals)')
     try:
-        amount = Decimal((repr(value) if isinstance(value, float) else str(value)).strip())
+        amount = Decimal(repr(value) if isinstance(value, float) else str(value))
     except (InvalidOperation, ValueError):
         raise ValueError('is not a decimal number such as "1250.00"') from None
     if not amount.is_finite():

@@ -170,9 +170,70 @@ def _load_examples() -> dict[str, dict[str, Any]]:
     return found
 
 
+# What every answer, or every answer of a status, carries (declared on each response).
+_REQUEST_ID_HEADER = {
+    "description": "the caller's X-Request-ID (1 to 128 visible ASCII characters) or one the service made",
+    "required": True,
+    "schema": {"type": "string", "pattern": r"^[!-~]{1,128}$"},
+}
+_RETRY_AFTER = {"description": "seconds to wait before retrying", "schema": {"type": "string", "pattern": r"^[0-9]+$"}}
+_STATUS_HEADERS: dict[str, dict[str, Any]] = {
+    "401": {"WWW-Authenticate": {"description": "Bearer", "required": True, "schema": {"type": "string"}}},
+    "409": {"Retry-After": {**_RETRY_AFTER, "description": "with an Idempotency-Key still being answered: seconds "
+                                                          "to wait before retrying with it"}},
+    "429": {"Retry-After": {**_RETRY_AFTER, "required": True}},
+    "503": {"Retry-After": {**_RETRY_AFTER, "required": True}},
+}
+_DESCRIPTIONS = {
+    "400": "Malformed Idempotency-Key",
+    "401": "Missing, unknown, expired or revoked key",
+    "403": "Right key, wrong role",
+    "404": "Not found (or another plan's)",
+    "406": "None of the accepted media types can be given",
+    "409": "Conflict",
+    "413": "Body, batch or mix over its limit",
+    "415": "A body that is not JSON (or CSV where the operation takes it)",
+    "422": "Invalid or unanswerable input",
+    "429": "Rate limited",
+    "500": "A failure of the service itself, logged under the problem's request_id",
+    "503": "The database cannot be reached",
+}
+_REPLAY = {"Mixline-Replay": {
+    "description": "true when this is the stored first answer to an earlier request with the same Idempotency-Key "
+                   "and body (nothing new was logged)",
+    "schema": {"type": "string", "enum": ["true"]},
+}}
+_OPERATION_HEADERS: dict[str, dict[str, dict[str, Any]]] = {
+    "create_allocation": {"201": _REPLAY},
+    "create_allocation_batch": {"201": _REPLAY},
+    "review_mix": {"200": {"Content-Security-Policy": {
+        "description": "default-src 'none' and what the page itself holds: it loads nothing",
+        "required": True, "schema": {"type": "string"},
+    }}},
+}
+_UNKEYED_PATHS = {"/livez", "/readyz", "/metrics"}
+
+
+def _statuses(path: str, op: dict[str, Any]) -> list[str]:
+    """Every status an operation can answer besides those its route declares."""
+    statuses = ["500"]
+    if op.get("security"):
+        # the key is checked (401, 403, and 404 for another plan's), rate limited, read from the
+        # database; any route answers 404 for a path it does not know and 422 for bad parameters
+        statuses += ["401", "403", "404", "422", "429", "503"]
+    elif path not in _UNKEYED_PATHS:
+        statuses += ["404", "422", "503"]
+    if "requestBody" in op:
+        statuses += ["413", "415", "422"]
+    return statuses
+
+
 def install_openapi(app: FastAPI) -> None:
-    """Post-process FastAPI's document: every error is problem+json, and our examples are embedded."""
+    """Post-process FastAPI's document so that it says exactly what the service answers: every
+    status each operation can give, as problem+json; the headers of every answer; the request
+    models of routes that read their own bodies; and our examples."""
     original = app.openapi
+    settings: Settings = app.state.mixline.settings
 
     def openapi() -> dict[str, Any]:
         if app.openapi_schema:
@@ -190,16 +251,30 @@ def install_openapi(app: FastAPI) -> None:
         for name in ("HTTPValidationError", "ValidationError"):
             components.pop(name, None)
         examples = _load_examples()
-        for path_item in doc.get("paths", {}).values():
+        for path, path_item in doc.get("paths", {}).items():
             for op in path_item.values():
                 if not isinstance(op, dict):
                     continue
                 responses = op.setdefault("responses", {})
+                for status in _statuses(path, op):
+                    responses.setdefault(status, {})
                 for status, response in responses.items():
-                    if status.isdigit() and int(status) >= 400:
+                    if not status.isdigit():
+                        continue
+                    if int(status) >= 400:
+                        response["description"] = _DESCRIPTIONS.get(status, response.get("description", "Error"))
                         response["content"] = {
                             PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}
                         }
+                    headers = response.setdefault("headers", {})
+                    headers["X-Request-ID"] = _REQUEST_ID_HEADER
+                    if status != "409" or any(p["name"] == "Idempotency-Key" for p in op.get("parameters", [])):
+                        headers.update(_STATUS_HEADERS.get(status, {}))
+                    headers.update(_OPERATION_HEADERS.get(op.get("operationId", ""), {}).get(status, {}))
+                for parameter in op.get("parameters", []):
+                    if parameter["name"] == "points" and parameter["in"] == "query":
+                        # the bound is a setting (MIXLINE_MAX_FRONTIER_POINTS): the document states this process's
+                        parameter["schema"]["maximum"] = settings.max_frontier_points
                 example = examples.get(op.get("operationId", ""))
                 if example:
                     _embed(op, example)

@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from typing import Any
 
 import orjson
@@ -61,7 +61,23 @@ PATTERN_WORDS = {
     r"^[!#-\[\]-~]{1,128}$":
         "1 to 128 printable ASCII characters without space, double quote or backslash",
     r"^[A-Z]{3}$": "three capital letters (an ISO 4217 currency code such as USD)",
+    r"^[0-9]+(?:\.[0-9]+)?$": 'digits, optionally a point and decimals, such as "1250.00"',
+    r"^[+-]?[0-9]+(?:\.[0-9]+)?$": 'an amount with its sign, such as "+12.34" or "-12.34"',
+    r"^(0|-?[1-9][0-9]*)$": "an integer written plainly, such as 3 or -1",
+    r"^[!-~]{1,128}$": "1 to 128 visible ASCII characters",
+    r"^[0-9]+$": "a whole number of seconds",
+    r'^(?:"([ !#-\[\]-~]{1,255})"|([!#-~]{1,255}))$':
+        "1 to 255 printable ASCII characters in double quotes, or without quotes, spaces and double quotes",
 }
+
+
+# Every kind of problem the service answers (the `type` is urn:mixline:problem:<kind>); the
+# OpenAPI's Problem.type enumerates them and docs/API.md's table lists them.
+PROBLEM_KINDS = (
+    "bad-idempotency-key", "unauthorized", "forbidden", "not-found", "method-not-allowed", "not-acceptable",
+    "conflict", "version-not-in-force", "version-state", "payload-too-large", "unsupported-media-type",
+    "validation", "rate-limited", "database-unavailable", "not-ready", "internal",
+)
 
 
 def problem_type(slug: str) -> str:
@@ -275,6 +291,14 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
             Unprocessable.status, Unprocessable.title, f"{first['field']}: {first['reason']}{more}",
             slug=Unprocessable.slug, errors=found, instance=path,
         )
+    if isinstance(exc, StarletteHTTPException) and exc.status_code == 400:
+        # FastAPI's answer to a body its JSON reader cannot decode (bytes that are not UTF-8):
+        # a malformed body is a validation problem like any other.
+        reason = "is not valid JSON (UTF-8 text)"
+        return problem_response(
+            Unprocessable.status, Unprocessable.title, f"body: {reason}", slug=Unprocessable.slug,
+            errors=[field_error("body", reason)], instance=path,
+        )
     if isinstance(exc, StarletteHTTPException):
         # The same types as ours: a missing route and a missing record are one kind to a client.
         kinds = {
@@ -282,7 +306,8 @@ def response_for(exc: BaseException, path: str, method: str = "") -> Response:
             405: ("Method not allowed", "method-not-allowed"),
             413: (PayloadTooLarge.title, PayloadTooLarge.slug),
         }
-        title, slug = kinds.get(exc.status_code, ("HTTP error", f"http-{exc.status_code}"))
+        # Starlette raises nothing else here; an unforeseen status is still one of our kinds.
+        title, slug = kinds.get(exc.status_code, ("Invalid request", "validation"))
         return problem_response(
             exc.status_code, title, str(exc.detail), slug=slug, headers=getattr(exc, "headers", None),
             instance=path,
@@ -310,8 +335,37 @@ def _first_line(exc: BaseException) -> str:
     return text.splitlines()[0][:200] if text else type(exc).__name__
 
 
+def _routes(routes: Sequence[Any]) -> Iterator[Any]:
+    """Every route of the application, included routers opened (FastAPI keeps them as branches)."""
+    for route in routes:
+        inner = getattr(route, "original_router", None)
+        if inner is not None:
+            yield from _routes(inner.routes)
+        else:
+            yield route
+
+
+def allowed_methods(app: FastAPI, scope: dict[str, Any]) -> list[str]:
+    """The methods of the path the request names: a path may be served by routes of several
+    routers (the allocation routes are), and a 405's Allow names them all. Where templates of
+    different shape match (`.../allocations/batch` and `.../allocations/{allocation_id}`), the
+    one with the fewest parameters is the path meant (`batch` is a path word, not an id)."""
+    matching: dict[int, set[str]] = {}
+    for route in _routes(app.router.routes):
+        regex = getattr(route, "path_regex", None)
+        if regex is not None and regex.match(scope["path"]) and getattr(route, "methods", None):
+            matching.setdefault(route.path.count("{"), set()).update(route.methods)
+    return sorted(matching[min(matching)]) if matching else []
+
+
 def install(app: FastAPI) -> None:
     async def handle(request: Request, exc: Exception) -> Response:
+        if isinstance(exc, StarletteHTTPException) and exc.status_code == 405:
+            allowed = allowed_methods(app, request.scope)
+            exc = StarletteHTTPException(
+                405, f"{request.method} is not allowed on this path; it allows {', '.join(allowed)}",
+                headers={"Allow": ", ".join(allowed)},
+            )
         return response_for(exc, request.url.path, request.method)
 
     for kind in (ProblemError, AllocationError, InputError, RequestValidationError, StarletteHTTPException, Exception):

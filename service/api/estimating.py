@@ -19,7 +19,7 @@ from .deps import CallerDep, StateDep
 from .errors import Unprocessable, UnsupportedMediaType, field_error
 from .history_csv import read_history_csv
 from .responses import AUTHED, json_response, problems
-from .schemas import EstimateIn, EstimateOut
+from .schemas import CovarianceMethod, EstimateIn, EstimateOut, Frequency
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
 
@@ -82,8 +82,8 @@ async def estimate(
     request: Request,
     caller: CallerDep,
     state: StateDep,
-    frequency: Annotated[str | None, Query(description="text/csv only: daily, weekly, monthly, quarterly, annual")] = None,
-    covariance_method: Annotated[str, Query(description="text/csv only: sample or shrinkage")] = "sample",
+    frequency: Annotated[Frequency | None, Query(description="text/csv only: daily, weekly, monthly, quarterly, annual")] = None,
+    covariance_method: Annotated[CovarianceMethod, Query(description="text/csv only: sample or shrinkage")] = "sample",
     expected_returns: Annotated[str, Query(description="text/csv only: historical, or CODE:rate,CODE:rate")] = "historical",
     risk_free_rate: Annotated[float | None, Query(description="text/csv only: annual decimal")] = None,
     repair: Annotated[bool, Query(description="text/csv only: take the nearest correlation matrix if needed")] = False,

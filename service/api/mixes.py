@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import datetime
 from typing import Annotated, Literal
 
 import orjson
@@ -12,6 +13,7 @@ from starlette.responses import HTMLResponse, Response
 
 from service.allocation import MixState, frontier_document, state_of
 from service.store import MixLifecycle, get_allocation
+from service.timestamps import rfc3339
 
 from .allocating import rendered
 from .bodies import parse_body, request_body_schema
@@ -38,8 +40,8 @@ router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
 READERS = ("committee", "portal")
 
 
-def _time(value: object) -> str | None:
-    return None if value is None else value.isoformat()  # type: ignore[attr-defined]
+def _time(value: datetime | None) -> str | None:
+    return None if value is None else rfc3339(value)
 
 
 def lifecycle_document(entry: MixLifecycle, state: MixState) -> dict[str, object]:
@@ -69,7 +71,8 @@ def list_mixes(plan_id: str, caller: CallerDep, state: StateDep) -> Response:
 
 @router.post(
     "", status_code=201, response_model=MixOut, operation_id="publish_mix",
-    responses={200: {"description": "Same version and content again: the first answer"}, **problems(*AUTHED, 409, 413)},
+    responses={200: {"model": MixOut, "description": "Same version and content again: the first answer"},
+               **problems(*AUTHED, 409, 413)},
     openapi_extra=request_body_schema("MixIn"),
 )
 async def publish_mix(plan_id: str, request: Request, caller: CallerDep, state: StateDep) -> Response:
