@@ -297,7 +297,8 @@ def _embed(op: dict[str, Any], example: dict[str, Any]) -> None:
         if int(status) >= 400:
             media_type = PROBLEM_MEDIA_TYPE
         elif isinstance(example["response"], str):
-            media_type = "text/plain"
+            # a text answer (the review page): the media type the operation declares for it
+            media_type = next((m for m in response.get("content", {}) if m != "application/json"), "text/plain")
         else:
             media_type = "application/json"
         content = response.setdefault("content", {}).setdefault(media_type, {})

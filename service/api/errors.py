@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from typing import Any
 
 import orjson
@@ -345,7 +345,7 @@ def _routes(routes: Sequence[Any]) -> Iterator[Any]:
             yield route
 
 
-def allowed_methods(app: FastAPI, scope: dict[str, Any]) -> list[str]:
+def allowed_methods(app: FastAPI, scope: Mapping[str, Any]) -> list[str]:
     """The methods of the path the request names: a path may be served by routes of several
     routers (the allocation routes are), and a 405's Allow names them all. Where templates of
     different shape match (`.../allocations/batch` and `.../allocations/{allocation_id}`), the

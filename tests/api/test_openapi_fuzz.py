@@ -15,6 +15,7 @@ never silence a check without a written reason beside it.
 from __future__ import annotations
 
 import asyncio
+from collections import Counter, defaultdict
 import copy
 import os
 import shutil
@@ -67,7 +68,8 @@ SEMANTIC_422 = {
 def _config() -> SchemathesisConfig:
     return SchemathesisConfig.from_dict({
         "seed": SEED,
-        "headers": {"Authorization": f"Bearer {OPERATOR}"},
+        # through the security scheme, so that the ignored_auth check can leave it out or spoil it
+        "auth": {"openapi": {"HTTPBearer": {"bearer": OPERATOR}}},
         "parameters": {"plan_id": PLAN},
         "generation": {"mode": "all", "max-examples": FUZZ_EXAMPLES, "deterministic": True},
         "checks": {"enabled": True},
@@ -166,6 +168,23 @@ def service(seeded: None) -> Iterator[None]:
     asgi.shutdown_lifespans()
 
 
+# status codes answered, per operation: the last test checks that the calls got past the key
+ANSWERED: dict[str, Counter[int]] = defaultdict(Counter)
+
+
 @schema.parametrize()
 def test_the_service_answers_as_its_openapi_says(case: Any) -> None:
-    case.call_and_validate()
+    response = case.call_and_validate()
+    ANSWERED[case.operation.label][response.status_code] += 1
+
+
+def test_the_fuzzer_reached_past_authentication() -> None:
+    """A run of 401s would pass every check above and prove nothing about the routes."""
+    operations = {operation.label for operation in (r.ok() for r in schema.get_all_operations())}
+    assert set(ANSWERED) == operations, sorted(operations - set(ANSWERED))
+    print("\n".join(f"{label}: {dict(sorted(codes.items()))}" for label, codes in sorted(ANSWERED.items())))
+    for label, codes in ANSWERED.items():
+        past_the_key = sum(n for status, n in codes.items() if status not in (401, 403))
+        assert past_the_key > 0, (label, codes)
+    succeeded = [label for label, codes in ANSWERED.items() if any(200 <= status < 300 for status in codes)]
+    assert len(succeeded) >= len(operations) - 4, sorted(operations - set(succeeded))
