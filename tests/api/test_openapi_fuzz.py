@@ -15,11 +15,11 @@ never silence a check without a written reason beside it.
 from __future__ import annotations
 
 import asyncio
-from collections import Counter, defaultdict
 import copy
 import os
 import shutil
 import tempfile
+from collections import Counter, defaultdict
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
