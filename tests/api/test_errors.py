@@ -71,5 +71,54 @@ async def test_times_are_rfc3339_utc_with_z(world: World, new_plan_id: str) -> N
     allocation = (await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=DEMO_ALLOCATION, headers=keys["portal"])).json()
     listed = (await world.client.get(f"/v1/plans/{new_plan_id}/keys", headers=world.operator)).json()["keys"]
     head = (await world.client.get(f"/v1/plans/{new_plan_id}/audit/head", headers=keys["committee"])).json()
-    for value in (plan["created_at"], allocation["created_at"], listed[0]["created_at"], head["signed_at"]):
+    mixes = (await world.client.get(f"/v1/plans/{new_plan_id}/mixes", headers=keys["committee"])).json()["versions"]
+    lifecycle = [mixes[0]["published_at"], mixes[0]["activated_at"]]
+    for value in (plan["created_at"], allocation["created_at"], listed[0]["created_at"], head["signed_at"], *lifecycle):
         assert RFC3339_Z.match(value), value
+
+
+async def test_a_405_names_every_method_of_the_path(world: World, new_plan_id: str) -> None:
+    keys = await world.plan(new_plan_id)
+    url = f"/v1/plans/{new_plan_id}/allocations"
+    # GET and POST of this path are routes of two routers (the posting one reads its own body)
+    r = await world.client.request("OPTIONS", url, headers=keys["portal"])
+    assert r.status_code == 405 and r.headers["allow"] == "GET, POST", (r.status_code, r.headers.get("allow"))
+    assert r.json()["type"] == "urn:mixline:problem:method-not-allowed"
+    # "batch" is a path word, not an allocation id: its own path allows POST only
+    r = await world.client.request("PUT", f"{url}/batch", headers=keys["portal"])
+    assert r.status_code == 405 and r.headers["allow"] == "POST"
+
+
+@pytest.mark.parametrize("route", ["/v1/plans", "keys", "allocations"])
+async def test_a_body_that_is_not_utf8_is_a_422(world: World, new_plan_id: str, route: str) -> None:
+    keys = await world.plan(new_plan_id)
+    url = route if route.startswith("/") else f"/v1/plans/{new_plan_id}/{route}"
+    r = await world.client.post(url, content=b"\xff\xfe{", headers={**world.operator, "Content-Type": "application/json"})
+    assert r.status_code == 422, r.text
+    assert r.json()["type"] == "urn:mixline:problem:validation" and r.json()["errors"][0]["field"] == "body"
+    del keys
+
+
+async def test_whole_numbers_are_integers_where_the_schema_says_integer(world: World, new_plan_id: str) -> None:
+    # JSON Schema's integer is a number without a fraction: 30.0 is 30
+    keys = await world.plan(new_plan_id, risk_score_table={"4": 3.5})
+    await world.publish(new_plan_id, keys)
+    r = await world.client.post(f"/v1/plans/{new_plan_id}/keys", json={"role": "portal", "expires_in_days": 30.0},
+                                headers=world.operator)
+    assert r.status_code == 201, r.text
+    body = DEMO_ALLOCATION | {"preference": {"risk_score": 4.0}}
+    r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=body, headers=keys["portal"])
+    assert r.status_code == 201, r.text
+    assert r.json()["risk_aversion_used"] == 3.5
+    r = await world.client.post(f"/v1/plans/{new_plan_id}/keys", json={"role": "portal", "expires_in_days": 30.5},
+                                headers=world.operator)
+    assert r.status_code == 422
+
+
+async def test_money_text_is_digits_and_a_point(world: World, new_plan_id: str) -> None:
+    keys = await world.plan(new_plan_id)
+    await world.publish(new_plan_id, keys)
+    url = f"/v1/plans/{new_plan_id}/allocations"
+    for amount in ("1e3", " 100", "1_000", "+5"):
+        r = await world.client.post(url, json=DEMO_ALLOCATION | {"amount": amount}, headers=keys["portal"])
+        assert r.status_code == 422 and r.json()["errors"][0]["field"] == "amount", (amount, r.text)

@@ -39,7 +39,7 @@ pytestmark = pytest.mark.slow
 
 OPERATOR = "fuzz-operator-key-0123456789abcdef0123456789"
 PLAN = "fuzz-plan"
-FUZZ_EXAMPLES = int(os.environ.get("MIXLINE_FUZZ_EXAMPLES", "25"))
+FUZZ_EXAMPLES = int(os.environ.get("MIXLINE_FUZZ_EXAMPLES", "150"))
 SEED = 20261202
 
 
