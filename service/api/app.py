@@ -26,6 +26,7 @@ from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
 from .gateway import Gateway, csv_routes
 from .metrics import Metrics, MetricsMiddleware
+from .responses import DESCRIPTIONS
 from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
 from .state import AppState
 
@@ -184,20 +185,6 @@ _STATUS_HEADERS: dict[str, dict[str, Any]] = {
     "429": {"Retry-After": {**_RETRY_AFTER, "required": True}},
     "503": {"Retry-After": {**_RETRY_AFTER, "required": True}},
 }
-_DESCRIPTIONS = {
-    "400": "Malformed Idempotency-Key",
-    "401": "Missing, unknown, expired or revoked key",
-    "403": "Right key, wrong role",
-    "404": "Not found (or another plan's)",
-    "406": "None of the accepted media types can be given",
-    "409": "Conflict",
-    "413": "Body, batch or mix over its limit",
-    "415": "A body that is not JSON (or CSV where the operation takes it)",
-    "422": "Invalid or unanswerable input",
-    "429": "Rate limited",
-    "500": "A failure of the service itself, logged under the problem's request_id",
-    "503": "The database cannot be reached",
-}
 _REPLAY = {"Mixline-Replay": {
     "description": "true when this is the stored first answer to an earlier request with the same Idempotency-Key "
                    "and body (nothing new was logged)",
@@ -262,7 +249,7 @@ def install_openapi(app: FastAPI) -> None:
                     if not status.isdigit():
                         continue
                     if int(status) >= 400:
-                        response["description"] = _DESCRIPTIONS.get(status, response.get("description", "Error"))
+                        response["description"] = DESCRIPTIONS[int(status)]
                         response["content"] = {
                             PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}
                         }

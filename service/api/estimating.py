@@ -22,6 +22,7 @@ from .responses import AUTHED, json_response, problems
 from .schemas import CovarianceMethod, EstimateIn, EstimateOut, Frequency
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
+CSV_OPTIONS = ("frequency", "covariance_method", "expected_returns", "risk_free_rate", "repair")
 
 
 def _given_returns(text: str) -> str | dict[str, float]:
@@ -94,6 +95,12 @@ async def estimate(
     raw = await request.body()
     lines: list[str] | None = None
     if media == "application/json":
+        # The options of a JSON history are its fields; a query parameter beside it would be
+        # silently ignored, so it is refused.
+        beside = [name for name in CSV_OPTIONS if name in request.query_params]
+        if beside:
+            reason = "a query parameter for a text/csv history only; a JSON history gives it in the body"
+            raise Unprocessable(f"{beside[0]}: {reason}", errors=[field_error(name, reason) for name in beside])
         body = parse_body(EstimateIn, raw)
     elif media == "text/csv":
         body, lines = _from_csv(raw, {

@@ -10,17 +10,21 @@ from starlette.responses import Response
 
 from .errors import PROBLEM_MEDIA_TYPE
 
-_DESCRIPTIONS = {
-    400: "Malformed request",
-    401: "Missing or wrong key",
+# What each error status means here (the OpenAPI's response descriptions; app.install_openapi
+# gives every one of them the problem+json content).
+DESCRIPTIONS = {
+    400: "Malformed Idempotency-Key",
+    401: "Missing, unknown, expired or revoked key",
     403: "Right key, wrong role",
     404: "Not found (or another plan's)",
-    409: "Conflict",
     406: "None of the accepted media types can be given",
-    413: "Too large",
-    415: "Unsupported media type",
+    409: "Conflict",
+    413: "Body, batch or mix over its limit",
+    415: "A body that is not JSON (or CSV where the operation takes it)",
     422: "Invalid or unanswerable input",
-    503: "Not ready",
+    429: "Rate limited",
+    500: "A failure of the service itself, logged under the problem's request_id",
+    503: "The database cannot be reached",
 }
 
 
@@ -40,7 +44,7 @@ def problems(*statuses: int) -> dict[int | str, dict[str, Any]]:
     """Declare error responses as problem+json (schema-based fuzzers check the media type)."""
     return {
         status: {
-            "description": _DESCRIPTIONS.get(status, "Error"),
+            "description": DESCRIPTIONS[status],
             "content": {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}},
         }
         for status in statuses

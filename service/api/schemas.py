@@ -43,6 +43,7 @@ from service.allocation.preferences import (
     SOURCE_MEMBER,
 )
 from service.allocation.requests import VERSION_PATTERN
+from service.numerics.estimation import COVARIANCE_METHODS, PERIODS_PER_YEAR
 
 from .errors import PROBLEM_KINDS, problem_type
 
@@ -349,11 +350,33 @@ class PlanIn(Strict):
     policy: PolicyIn = PolicyIn()
 
 
+class GlidePointOut(Documented):
+    years_to_retirement: float = Field(description="years to retirement at this point")
+    risk_aversion: float = Field(description="the risk aversion for members this far from retirement")
+
+
+class HumanCapitalTermsOut(Documented):
+    discount_rate: float | None
+    equity_like_share: float
+
+
+class PolicyOut(Documented):
+    """The policy as stored (plans made before a field existed may lack it: its default applies)."""
+
+    min_risky_fraction: float = 0.0
+    max_risky_fraction: float = 1.0
+    borrowing_rate: float | None = None
+    risk_score_table: dict[str, float] = {}
+    glide_path: list[GlidePointOut] | None = Field(default=None, description="sorted by years to retirement")
+    human_capital: HumanCapitalTermsOut | None = None
+    rebalance_band: float = DEFAULT_REBALANCE_BAND
+
+
 class PlanOut(Documented):
     plan_id: str
     name: str
     currency: str
-    policy: dict[str, object]
+    policy: PolicyOut
     active_version: str | None
     created_at: Timestamp
 
@@ -476,8 +499,9 @@ class MixIn(Strict):
         return self
 
 
-Frequency = Literal["daily", "weekly", "monthly", "quarterly", "annual"]
-CovarianceMethod = Literal["sample", "shrinkage"]
+# The names numerics.estimation knows, declared; that module checks them (with its own message).
+Frequency = Annotated[str, WithJsonSchema({"type": "string", "enum": list(PERIODS_PER_YEAR)})]
+CovarianceMethod = Annotated[str, WithJsonSchema({"type": "string", "enum": list(COVARIANCE_METHODS)})]
 
 
 class PortfolioOut(Documented):
@@ -577,14 +601,15 @@ class EstimateIn(Strict):
     returns: Annotated[dict[Code, list[float | None]], Field(min_length=1)]
     dates: list[str] | None = None
     covariance_method: CovarianceMethod = "sample"
-    expected_returns: Literal["historical"] | dict[Code, float] = "historical"
+    expected_returns: Annotated[str, WithJsonSchema({"type": "string", "enum": ["historical"]})] | dict[Code, float] = (
+        "historical")
     risk_free_rate: Rate
     repair: bool = False
 
 
 class EstimationOut(Documented):
     observations: int
-    periods_per_year: Literal[252, 52, 12, 4, 1]
+    periods_per_year: Annotated[int, WithJsonSchema({"type": "integer", "enum": sorted(set(PERIODS_PER_YEAR.values()))})]
     covariance_method: CovarianceMethod
     shrinkage_intensity: float | None
     condition_number: float
@@ -593,8 +618,21 @@ class EstimationOut(Documented):
     expected_returns: str = Field(description="historical, or given (one annual decimal per asset code was given)")
 
 
+class EstimatedAssetOut(Documented):
+    code: str
+    expected_return: float
+    volatility: float
+
+
+class EstimatedMixOut(Documented):
+    assets: list[EstimatedAssetOut]
+    correlation: list[list[float]]
+    risk_free_rate: float
+    long_only: bool
+
+
 class EstimateOut(Documented):
-    mix: dict[str, Any] = Field(description="a body for POST .../mixes, without its version")
+    mix: EstimatedMixOut = Field(description="a body for POST .../mixes, without its version")
     estimation: EstimationOut
 
 

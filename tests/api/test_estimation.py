@@ -97,6 +97,15 @@ async def test_given_expected_returns_and_repair(world: World, new_plan_id: str,
     assert fixed.json()["estimation"]["repaired"] is True and 0 < fixed.json()["estimation"]["repair_distance"] < 1e-6
 
 
+async def test_csv_options_beside_a_json_history_are_refused(world: World, new_plan_id: str, history: Any) -> None:
+    # they would otherwise be ignored without a word (a fuzzer's find: frequency=AAA answered 200)
+    dates, x = history
+    keys = await world.plan(new_plan_id)
+    url = f"/v1/plans/{new_plan_id}/mixes/estimate"
+    r = await world.client.post(url, json=as_json(dates, x), params={"frequency": "weekly"}, headers=keys["committee"])
+    assert_problem(r, 422, "frequency")
+
+
 async def test_every_refusal_names_its_field(world: World, new_plan_id: str, history: Any) -> None:
     dates, x = history
     keys = await world.plan(new_plan_id)

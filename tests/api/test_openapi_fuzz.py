@@ -60,7 +60,8 @@ SEMANTIC_422 = {
     # matrices square in the order of assets, symmetric, positive semi-definite, within the
     # condition-number bound; bounds name the mix's codes and admit a portfolio
     "publish_mix": "matrices must fit the assets and be positive semi-definite",
-    # at least N + 1 observations of equal length, dates increasing, no constant series
+    # at least N + 1 observations of equal length, dates increasing, no constant series; the
+    # query parameters belong to a text/csv history only (beside a JSON one they are refused)
     "estimate_mix": "return series must fit one another",
 }
 
