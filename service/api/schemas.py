@@ -296,7 +296,7 @@ class Problem(Documented):
 
     type: Annotated[str, WithJsonSchema({"type": "string", "enum": [problem_type(k) for k in PROBLEM_KINDS]})]
     title: str
-    status: int
+    status: Annotated[int, Field(ge=400, le=599)]
     detail: str
     instance: str | None = None
     request_id: str | None = None
