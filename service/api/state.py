@@ -107,16 +107,6 @@ FRONTIER_PROCESS_MIN_ASSETS = 500
 FRONTIER_PROCESS_NICE = 10
 
 
-def _background_priority() -> None:
-    """The frontier process's CPU priority: the idle scheduling class where the system has it
-    (Linux), so that a serving thread woken on a busy node takes the core at once instead of
-    sharing it by weight; else a lower niceness."""
-    try:
-        os.sched_setscheduler(0, os.SCHED_IDLE, os.sched_param(0))
-    except (AttributeError, OSError):
-        os.nice(FRONTIER_PROCESS_NICE)
-
-
 def frontier_with_text(inputs: MixInputs) -> tuple[Frontier, str]:
     """The exact frontier and the text it is stored as, made where it is solved: in the frontier
     process for a large mix, so that the serving process only unpickles and stores it."""
@@ -165,7 +155,7 @@ class MixCatalog:
             if self._process is None:
                 # Lower CPU priority: on a busy node the scheduler serves requests first.
                 self._process = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"),
-                                                    initializer=_background_priority)
+                                                    initializer=os.nice, initargs=(FRONTIER_PROCESS_NICE,))
             return self._process.submit(frontier_with_text, inputs).result()
         except (BrokenProcessPool, OSError):
             log.warning("the frontier process failed; solving in this process", exc_info=True)
