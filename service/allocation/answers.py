@@ -9,6 +9,7 @@ result names their version.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from functools import lru_cache
 
 import numpy as np
 import orjson
@@ -26,12 +27,17 @@ def _pair_texts(a: list[str], b: list[str]) -> list[str]:
     return [f'{{"risky":"{x}","safe":"{y}"}}' for x, y in zip(a, b, strict=True)]
 
 
+@lru_cache(maxsize=256)
+def _by_asset_template(codes: tuple[str, ...]) -> str:
+    # Codes are letters, digits and . _ - (the mix schema's pattern): no braces to escape.
+    return "{{" + ",".join(f'{orjson.dumps(c).decode()}:"{{}}"' for c in codes) + "}}"
+
+
 def _by_asset_texts(codes: Sequence[str], flat: list[str]) -> list[str]:
     k = len(codes)
     if k == 0:
         return []
-    # Codes are letters, digits and . _ - (the mix schema's pattern): no braces to escape.
-    template = "{{" + ",".join(f'{orjson.dumps(c).decode()}:"{{}}"' for c in codes) + "}}"
+    template = _by_asset_template(tuple(codes))
     return [template.format(*flat[i : i + k]) for i in range(0, len(flat), k)]
 
 

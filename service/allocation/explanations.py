@@ -111,7 +111,7 @@ def _readable(digits: int, *columns: NDArray[np.float64]) -> list[list[str]]:
     text conversion for all the columns (they are of one length)."""
     if not columns[0].size:
         return [[] for _ in columns]
-    both = np.round(np.stack(columns), digits) + 0.0
+    both = np.round(np.array(columns), digits) + 0.0
     text: str = orjson.dumps(both, option=orjson.OPT_SERIALIZE_NUMPY).decode()
     return [row.split(",") for row in _TRAILING_ZERO.sub("", text)[2:-2].split("],[")]
 
@@ -123,7 +123,7 @@ def _percent(*columns: NDArray[np.float64]) -> list[list[str]]:
 def _whole(currency: str, *columns: NDArray[Any]) -> list[list[str]]:
     """Money in whole units of the currency, with thousands separators."""
     scale = 10 ** minor_exponent(currency)
-    whole = np.rint(np.stack([np.asarray(c, dtype=np.float64) for c in columns]) / scale).astype(np.int64)
+    whole = np.rint(np.array(columns, dtype=np.float64) / scale).astype(np.int64)
     return [[f"{v:,}" for v in row] for row in whole.tolist()]
 
 

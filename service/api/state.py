@@ -58,6 +58,7 @@ from service.store import (
     get_plan,
     insert_frontier,
     insert_mix,
+    json_text,
     list_lifecycle,
     lock_lifecycle,
     record_activation,
@@ -106,6 +107,13 @@ FRONTIER_PROCESS_MIN_ASSETS = 500
 FRONTIER_PROCESS_NICE = 10
 
 
+def frontier_with_text(inputs: MixInputs) -> tuple[Frontier, str]:
+    """The exact frontier and the text it is stored as, made where it is solved: in the frontier
+    process for a large mix, so that the serving process only unpickles and stores it."""
+    found = efficient_frontier(inputs)
+    return found, json_text(found.to_document())
+
+
 class MixCatalog:
     """Published mixes: solved once at publish, stored, and rebuilt from the stored document.
 
@@ -140,19 +148,19 @@ class MixCatalog:
         if self._process is not None:
             self._process.shutdown(wait=False, cancel_futures=True)
 
-    def _efficient_frontier(self, inputs: MixInputs) -> Frontier:
+    def _efficient_frontier(self, inputs: MixInputs) -> tuple[Frontier, str]:
         if inputs.n < FRONTIER_PROCESS_MIN_ASSETS or not hasattr(os, "fork"):
-            return efficient_frontier(inputs)
+            return frontier_with_text(inputs)
         try:
             if self._process is None:
                 # Lower CPU priority: on a busy node the scheduler serves requests first.
                 self._process = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"),
                                                     initializer=os.nice, initargs=(FRONTIER_PROCESS_NICE,))
-            return self._process.submit(efficient_frontier, inputs).result()
+            return self._process.submit(frontier_with_text, inputs).result()
         except (BrokenProcessPool, OSError):
             log.warning("the frontier process failed; solving in this process", exc_info=True)
             self._process = None
-            return efficient_frontier(inputs)
+            return frontier_with_text(inputs)
 
     def frontier(self, plan_id: str, version: str) -> tuple[MixView, Frontier]:
         view = self.view(plan_id, version)
@@ -175,13 +183,13 @@ class MixCatalog:
             if stored is not None:
                 found = Frontier.from_document(stored, len(inputs.codes))
             else:
-                found = self._efficient_frontier(inputs)
+                found, text = self._efficient_frontier(inputs)
                 # Stored next on the same worker: whoever waits for this frontier is answered
                 # from memory without waiting for the database.
                 try:
-                    self._solver.submit(self._store_frontier, digest, found)
+                    self._solver.submit(self._store_frontier, digest, text)
                 except RuntimeError:  # shutting down: store it now
-                    self._store_frontier(digest, found)
+                    self._store_frontier(digest, text)
             with self._lock:
                 self._frontiers[digest] = found
             keep_for_life()
@@ -190,10 +198,10 @@ class MixCatalog:
             with self._lock:
                 self._pending.pop(digest, None)
 
-    def _store_frontier(self, digest: str, found: Frontier) -> None:
+    def _store_frontier(self, digest: str, text: str) -> None:
         try:
             with self._db.writing() as s:
-                insert_frontier(s, content_hash=digest, document=found.to_document())
+                insert_frontier(s, content_hash=digest, document=text)
         except SQLAlchemyError:
             # Kept in memory all the same; a later replica solves it once more.
             log.warning("could not store the frontier of %s", digest, exc_info=True)
@@ -349,6 +357,9 @@ class MixCatalog:
             # A large frontier is solved in the child process: start it now, while this mix is
             # stored and answered (a small one waits for the answer: in a thread it would slow it).
             self._frontier_soon(digest, solved.inputs)
+        # The stored text is made before the write transaction: on SQLite that transaction holds the
+        # one write lock, which the log writer waits for (a 2,000-asset mix is a few MB of text).
+        stored = json_text({"published": doc, "numerics": solved.to_document()})
         try:
             with self._db.writing() as s:
                 insert_mix(
@@ -357,7 +368,7 @@ class MixCatalog:
                     version=request.version,
                     content_hash=digest,
                     inputs=text.decode(),
-                    solved={"published": doc, "numerics": solved.to_document()},
+                    solved=stored,
                     published_by=published_by,
                 )
         except Conflict:

@@ -46,6 +46,7 @@ from service.store.repository import (
     revoke_key,
     upsert_key,
 )
+from service.store.schema import json_text
 from service.store.signed_heads import (
     HeadSigner,
     SignedHead,
@@ -56,6 +57,7 @@ from service.store.signed_heads import (
 from service.store.writer import ChainWriter
 
 __all__ = [
+    "json_text",
     "GENESIS_HASH",
     "BadRow",
     "ChainReport",

@@ -192,10 +192,11 @@ def insert_mix(
     version: str,
     content_hash: str,
     inputs: dict[str, Any] | str,
-    solved: dict[str, Any],
+    solved: dict[str, Any] | str,
     published_by: str | None = None,
 ) -> None:
-    """``inputs`` may come as its JSON text already (sorted keys, as ``json_text`` writes it)."""
+    """``inputs`` and ``solved`` may come as their JSON text already (``json_text``'s): a large
+    mix's text is then made before the write transaction, not while it holds the write lock."""
     _insert_new(
         s,
         Mix,
@@ -205,7 +206,7 @@ def insert_mix(
             version=version,
             content_hash=content_hash,
             inputs=inputs if isinstance(inputs, str) else json_text(inputs),
-            solved=json_text(solved),
+            solved=solved if isinstance(solved, str) else json_text(solved),
             created_at=utc_now(),
             published_by=published_by,
         ),
@@ -349,12 +350,13 @@ def latest_allocations(s: Session, plan_id: str, mix_version: str) -> list[str]:
     )
 
 
-def insert_frontier(s: Session, *, content_hash: str, document: dict[str, Any]) -> bool:
+def insert_frontier(s: Session, *, content_hash: str, document: dict[str, Any] | str) -> bool:
     """Store a frontier once per content hash; False if one was there already (same content,
-    so the same frontier)."""
+    so the same frontier). ``document`` may come as its ``json_text`` already."""
     stmt = (
         _insert(s, StoredFrontier)
-        .values(content_hash=content_hash, document=json_text(document), created_at=utc_now())
+        .values(content_hash=content_hash, document=document if isinstance(document, str) else json_text(document),
+                created_at=utc_now())
         .on_conflict_do_nothing()
         .execution_options(preserve_rowcount=True)
     )

@@ -62,6 +62,37 @@ _COLUMNS = (
 )
 # Below this many rows a pipelined executemany beats setting up COPY.
 _COPY_MIN_ROWS = 2_000
+
+# PostgreSQL, a group whose plans' heads the writer committed last: one statement, sent in
+# autocommit mode (one round trip, no BEGIN, no separate COMMIT), its arrays in binary (psycopg
+# escapes a text array element by element with a regular expression). Its first part locks the heads
+# and keeps only those still where this writer left them; rows and new heads are written only if
+# every plan's head qualified, so a head moved by another replica (or by hand) writes nothing
+# and the group goes the ordinary way, hashed from the heads as they are.
+_APPEND_AT_KNOWN_HEADS = f"""
+WITH known AS (
+    SELECT h.plan_id FROM chain_heads AS h
+    JOIN unnest(%b::text[], %b::bigint[], %b::text[]) AS k(plan_id, last_seq, last_hash)
+      ON h.plan_id = k.plan_id AND h.last_seq = k.last_seq AND h.last_hash = k.last_hash
+    ORDER BY h.plan_id
+    FOR UPDATE OF h
+), applies AS (
+    SELECT count(*) = %b AS ok FROM known
+), rows AS (
+    INSERT INTO allocations ({_COLUMNS})
+    SELECT r.* FROM unnest(
+        %b::text[], %b::bigint[], %b::text[], %b::text[], %b::text[], %b::text[], %b::text[],
+        %b::text[], %b::text[], %b::text[]
+    ) AS r, applies WHERE applies.ok
+    RETURNING 1
+), heads AS (
+    UPDATE chain_heads AS h SET last_seq = n.last_seq, last_hash = n.last_hash
+    FROM unnest(%b::text[], %b::bigint[], %b::text[]) AS n(plan_id, last_seq, last_hash), applies
+    WHERE h.plan_id = n.plan_id AND applies.ok
+    RETURNING 1
+)
+SELECT applies.ok, (SELECT count(*) FROM rows), (SELECT count(*) FROM heads) FROM applies
+"""
 # A larger page cache keeps the indexes' hot pages of a large batch in memory.
 _SQLITE_WRITER_CACHE_KIB = 64 * 1024
 
@@ -202,6 +233,9 @@ class ChainWriter:
         # file then would compete with the stream's own writes (one checkpoint follows it).
         self._streaming = False
         self._refused: tuple[float, Exception] | None = None  # (until when, the connect error)
+        # PostgreSQL: each plan's head as this writer last committed it (see _APPEND_AT_KNOWN_HEADS);
+        # forgotten whenever a transaction fails or the connection is replaced.
+        self._known_heads: dict[str, tuple[int, str]] = {}
         # Called on the writer thread after each group as (jobs, rows, seconds); the api layer
         # turns it into metrics, so this module needs no metrics library. Once per group, not per row.
         self.group_written: Callable[[int, int, float], None] | None = None
@@ -551,12 +585,14 @@ class ChainWriter:
             else:
                 self._write_postgresql(dbapi, jobs)
         except driver_error as error:
+            self._known_heads.clear()
             lost = self._engine.dialect.is_disconnect(error, dbapi, None)
             self._rollback(dbapi)
             raise DBAPIError.instance(
                 None, None, error, driver_error, connection_invalidated=lost
             ) from error
         except BaseException:
+            self._known_heads.clear()
             self._rollback(dbapi)
             raise
 
@@ -593,6 +629,7 @@ class ChainWriter:
         return self._connection
 
     def _drop_connection(self, *, invalidate: bool) -> None:
+        self._known_heads.clear()
         connection, self._connection = self._connection, None
         if connection is None:
             return
@@ -642,6 +679,8 @@ class ChainWriter:
             self._checkpointer.committed(sum(job.size for job in jobs))
 
     def _write_postgresql(self, dbapi: Any, jobs: list[_Job]) -> None:
+        if self._append_at_known_heads(dbapi, jobs):
+            return
         plan_ids = sorted({job.batch.plan_id for job in jobs if job.logs})
         with dbapi.cursor() as cursor:
             self._key_operations(cursor, jobs, "%s")
@@ -668,6 +707,7 @@ class ChainWriter:
                 cursor.executemany(move_heads, _head_rows(chains))
                 complete(cursor, _completions(jobs), "%s")
                 dbapi.commit()
+                self._known_heads.update(chains.heads)
                 return
             rows = list(chains.rows(jobs))
             # Before the pipeline, which gives no row counts: an answer whose reservation was
@@ -683,6 +723,56 @@ class ChainWriter:
                 )
                 cursor.executemany(move_heads, _head_rows(chains))
                 dbapi.commit()
+            self._known_heads.update(chains.heads)
+
+    def _append_at_known_heads(self, dbapi: Any, jobs: list[_Job]) -> bool:
+        """Write a group of plain log rows in one round trip when this writer knows every plan's
+        head (it committed it last); False, with nothing written, when it may not: a group with
+        key operations or Idempotency-Key answers (their lease checks need the ordinary path),
+        large groups and stream pieces (COPY), a plan not written since the connection was made,
+        a head moved by someone else meanwhile."""
+        if not self._known_heads or time.time() - self._last_purge > _PURGE_EVERY_SECONDS:
+            return False
+        rows_total = 0
+        for job in jobs:
+            batch = job.batch
+            if not isinstance(batch, LogBatch) or batch.batch_id or batch.completion() is not None:
+                return False
+            if batch.plan_id not in self._known_heads:
+                return False
+            rows_total += job.size
+        if rows_total >= _COPY_MIN_ROWS:
+            return False
+        plan_ids = sorted({job.batch.plan_id for job in jobs})
+        known = {plan_id: self._known_heads[plan_id] for plan_id in plan_ids}
+        chains = _Chains(dict(known))
+        columns: list[list[Any]] = [[] for _ in range(10)]
+        for row in chains.rows(jobs):
+            for column, value in zip(columns, row, strict=True):
+                column.append(value)
+        new_heads = [chains.heads[p] for p in plan_ids]
+        parameters = (
+            plan_ids, [known[p][0] for p in plan_ids], [known[p][1] for p in plan_ids], len(plan_ids),
+            *columns,
+            plan_ids, [h[0] for h in new_heads], [h[1] for h in new_heads],
+        )
+        dbapi.autocommit = True
+        try:
+            with dbapi.cursor() as cursor:
+                cursor.execute(_APPEND_AT_KNOWN_HEADS, parameters)
+                applied, inserted, moved = cursor.fetchone()
+        finally:
+            dbapi.autocommit = False
+        if not applied:
+            for plan_id in plan_ids:
+                self._known_heads.pop(plan_id, None)
+            return False
+        if inserted != rows_total or moved != len(plan_ids):
+            # Cannot happen with the statement above (all or nothing); if it ever did, the chain
+            # would need looking at, not a silent retry.
+            raise RuntimeError(f"known-heads append wrote {inserted} rows and {moved} heads of {rows_total}, {len(plan_ids)}")
+        self._known_heads.update(chains.heads)
+        return True
 
     @staticmethod
     def _lock_heads_postgresql(cursor: Any, plan_ids: list[str]) -> dict[str, tuple[int, str]]:

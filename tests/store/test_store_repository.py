@@ -48,7 +48,7 @@ def test_public_names_are_exactly_the_interface() -> None:
             "latest_allocations", "list_allocations", "list_keys", "revoke_key", "secret_hash", "secret_matches",
             "MixLifecycle", "list_lifecycle", "lock_lifecycle", "record_activation",
             "record_retirement",
-            "upsert_key", "verify_chain",
+            "upsert_key", "verify_chain", "json_text",
         ]
     )
     assert all(hasattr(store, name) for name in store.__all__)

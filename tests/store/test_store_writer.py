@@ -128,6 +128,40 @@ def test_two_writers_on_one_database_share_one_chain(db_url: str, plan_id: str) 
             replica.close()
 
 
+def test_a_head_moved_by_another_writer_is_not_written_over(db_url: str, plan_id: str) -> None:
+    """PostgreSQL: a writer appends a small group in one statement hashed from the head it
+    committed last, guarded by locking that head and checking it is still there. Two replicas
+    taking turns move each other's head every time: each append must notice and go the
+    ordinary way (read and lock the head), and the chain must come out whole."""
+    if not db_url.startswith("postgresql"):
+        pytest.skip("the one-statement append is PostgreSQL's")
+    replicas = [Database(db_url), Database(db_url)]
+    outcomes: list[bool] = []
+    for replica in replicas:
+        append_at_known_heads = replica.writer._append_at_known_heads
+
+        def observed(dbapi: Any, jobs: Any, inner: Any = append_at_known_heads) -> bool:
+            outcomes.append(inner(dbapi, jobs))
+            return outcomes[-1]
+
+        replica.writer._append_at_known_heads = observed  # type: ignore[method-assign]
+        replica.start()
+    try:
+        for i in range(6):  # the same replica twice running: its head is still where it left it
+            replicas[0].writer.append(batch(plan_id, [f"{plan_id}-own-{i}"]))
+        assert outcomes.count(True) >= 4, outcomes
+        outcomes.clear()
+        for i in range(12):  # taking turns: each finds its head moved by the other
+            replicas[(i + 1) % 2].writer.append(batch(plan_id, [f"{plan_id}-turn-{i}"]))
+        assert outcomes and not any(outcomes), outcomes
+        expected = [f"{plan_id}-own-{i}" for i in range(6)] + [f"{plan_id}-turn-{i}" for i in range(12)]
+        assert logged_ids(replicas[0], plan_id) == list(enumerate(expected, start=1))
+        assert verify_chain(replicas[1], plan_id).ok
+    finally:
+        for replica in replicas:
+            replica.close()
+
+
 def test_malformed_batches_are_refused_at_submit(database: Database, plan_id: str) -> None:
     good = batch(plan_id, [f"{plan_id}-1", f"{plan_id}-2"])
     with pytest.raises(ValueError, match="must match"):
