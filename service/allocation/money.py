@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Sequence
-from decimal import Decimal, InvalidOperation
+from decimal import Decimal
 from functools import cache
 from typing import Any
 
@@ -46,10 +46,8 @@ def parse_amount(value: Any, currency: str) -> int:
         if value.startswith("-") and _AMOUNT_TEXT.fullmatch(value[1:]):
             raise ValueError("must not be negative")
         raise ValueError('is not a decimal number such as "1250.00" (digits, optionally a point and decimals)')
-    try:
-        amount = Decimal(repr(value) if isinstance(value, float) else str(value))
-    except (InvalidOperation, ValueError):
-        raise ValueError('is not a decimal number such as "1250.00"') from None
+    # Always a decimal now: a string matched the pattern, a float's repr and an int's text are.
+    amount = Decimal(repr(value) if isinstance(value, float) else str(value))
     if not amount.is_finite():
         raise ValueError("must be a finite amount")
     if amount < 0:

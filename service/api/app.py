@@ -24,7 +24,7 @@ from . import allocations, audit, errors, estimating, impact, mixes, operations,
 from .auth import BOOTSTRAP_KEY_ID
 from .docs import install_docs
 from .errors import PROBLEM_MEDIA_TYPE, PayloadTooLarge, problem_response
-from .gateway import Gateway, csv_routes
+from .gateway import REQUEST_ID_PATTERN, Gateway, csv_routes
 from .metrics import Metrics, MetricsMiddleware
 from .responses import DESCRIPTIONS
 from .schemas import AllocationIn, BatchIn, EstimateIn, MixIn, Problem
@@ -175,7 +175,7 @@ def _load_examples() -> dict[str, dict[str, Any]]:
 _REQUEST_ID_HEADER = {
     "description": "the caller's X-Request-ID (1 to 128 visible ASCII characters) or one the service made",
     "required": True,
-    "schema": {"type": "string", "pattern": r"^[!-~]{1,128}$"},
+    "schema": {"type": "string", "pattern": f"^{REQUEST_ID_PATTERN}$"},
 }
 _RETRY_AFTER = {"description": "seconds to wait before retrying", "schema": {"type": "string", "pattern": r"^[0-9]+$"}}
 _STATUS_HEADERS: dict[str, dict[str, Any]] = {

@@ -39,6 +39,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
 from service.allocation import AllocationError, LifecycleConflict, MemberErrors
+from service.allocation.money import AMOUNT_PATTERN
 from service.allocation.requests import TooManyMembers
 from service.numerics import InputError
 from service.store import IdempotencyLeaseLost
@@ -61,8 +62,8 @@ PATTERN_WORDS = {
     r"^[!#-\[\]-~]{1,128}$":
         "1 to 128 printable ASCII characters without space, double quote or backslash",
     r"^[A-Z]{3}$": "three capital letters (an ISO 4217 currency code such as USD)",
-    r"^[0-9]+(?:\.[0-9]+)?$": 'digits, optionally a point and decimals, such as "1250.00"',
-    r"^[+-]?[0-9]+(?:\.[0-9]+)?$": 'an amount with its sign, such as "+12.34" or "-12.34"',
+    f"^{AMOUNT_PATTERN}$": 'digits, optionally a point and decimals, such as "1250.00"',
+    f"^[+-]?{AMOUNT_PATTERN}$": 'an amount with its sign, such as "+12.34" or "-12.34"',
     r"^(0|-?[1-9][0-9]*)$": "an integer written plainly, such as 3 or -1",
     r"^[!-~]{1,128}$": "1 to 128 visible ASCII characters",
     r"^[0-9]+$": "a whole number of seconds",

@@ -27,7 +27,9 @@ from .access_log import AccessLog
 from .errors import UnsupportedMediaType, response_for
 from .request_context import RequestInfo, current_request
 
-_CALLER_ID = re.compile(rb"[\x21-\x7e]{1,128}")
+# A caller's X-Request-ID that is kept; the OpenAPI declares the same pattern.
+REQUEST_ID_PATTERN = "[!-~]{1,128}"
+_CALLER_ID = re.compile(REQUEST_ID_PATTERN.encode())
 _JSON = b"application/json"
 _CSV = b"text/csv"
 

@@ -22,6 +22,7 @@ from pydantic import (
 
 from service.allocation import (
     MEMBER_ID_PATTERN,
+    RESERVED_VERSION_NAMES,
     AllocationError,
     check_decimal_rates,
     check_version_name,
@@ -465,7 +466,7 @@ class FactorModelIn(Strict):
 class MixIn(Strict):
     model_config = ConfigDict(json_schema_extra=_one_of_matrices)
 
-    version: str = bounded(pattern=IDENTIFIER_PATTERN, **{"not": {"enum": ["current", "estimate"]}})
+    version: str = bounded(pattern=IDENTIFIER_PATTERN, **{"not": {"enum": sorted(RESERVED_VERSION_NAMES)}})
     assets: Annotated[list[AssetIn], Field(min_length=1)]
     correlation: Matrix | None = None
     covariance: Matrix | None = None

@@ -185,6 +185,12 @@ def revoke_key(s: Session, plan_id: str, key_id: str, *, now: datetime) -> KeyRe
     return None if row is None else _key_record(row)
 
 
+def _text(value: dict[str, Any] | str) -> str:
+    """A document to store: as given when it is its ``json_text`` already (made before the write
+    transaction, so a large one is not serialised while the write lock is held)."""
+    return value if isinstance(value, str) else json_text(value)
+
+
 def insert_mix(
     s: Session,
     *,
@@ -205,8 +211,8 @@ def insert_mix(
             plan_id=plan_id,
             version=version,
             content_hash=content_hash,
-            inputs=inputs if isinstance(inputs, str) else json_text(inputs),
-            solved=solved if isinstance(solved, str) else json_text(solved),
+            inputs=_text(inputs),
+            solved=_text(solved),
             created_at=utc_now(),
             published_by=published_by,
         ),
@@ -355,8 +361,7 @@ def insert_frontier(s: Session, *, content_hash: str, document: dict[str, Any] |
     so the same frontier). ``document`` may come as its ``json_text`` already."""
     stmt = (
         _insert(s, StoredFrontier)
-        .values(content_hash=content_hash, document=document if isinstance(document, str) else json_text(document),
-                created_at=utc_now())
+        .values(content_hash=content_hash, document=_text(document), created_at=utc_now())
         .on_conflict_do_nothing()
         .execution_options(preserve_rowcount=True)
     )
