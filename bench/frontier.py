@@ -1,6 +1,7 @@
 """Benchmark: the exact frontier of security-level mixes (dense and factor-model risk).
 
     .venv/bin/python bench/frontier.py [--quick] [--cvxpy-points 10] [--no-server] [--singles 3]
+                                       [--no-in-process]
 
 Problems (seeded, invented): N securities on k factors (a market factor with positive
 loadings, k - 1 style factors, a correlated factor covariance, specific volatilities 5-25 %),
@@ -280,8 +281,10 @@ def main() -> None:
     parser.add_argument("--cvxpy-points", type=int, default=10, help="how many of the 100 targets cvxpy solves")
     parser.add_argument("--no-server", action="store_true", help="skip the HTTP parts")
     parser.add_argument("--singles", type=int, default=3, help="seconds of wrk per single-allocation run (0 skips)")
+    parser.add_argument("--no-in-process", action="store_true", help="skip part 1 (the in-process timings)")
     args = parser.parse_args()
-    in_process(2 if args.quick else 4)
+    if not args.no_in_process:
+        in_process(2 if args.quick else 4)
     if args.cvxpy_points > 0:
         against_cvxpy(args.cvxpy_points)
     if not args.no_server:

@@ -79,12 +79,12 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     import json
     from datetime import timedelta
 
+    import orjson
     from sqlalchemy import text
 
     from service.allocation import build_policy
     from service.api.auth import new_secret
     from service.api.metrics import Metrics
-    from service.api.schemas import MixIn
     from service.api.state import AppState
     from service.demo import DEMO_MEMBERS, DEMO_MIX, DEMO_PLAN
     from service.store import (
@@ -121,7 +121,7 @@ def _demo(settings: Settings, host: str, port: int) -> int:
     state = AppState(settings, db, Metrics())
     plan = state.plan(DEMO_PLAN["plan_id"])
     # Published and activated by the demo's own set-up, not by a key.
-    created, doc = state.mixes.publish(plan, MixIn.model_validate(DEMO_MIX), "demo-setup")
+    created, doc = state.mixes.publish(plan, orjson.dumps(DEMO_MIX), "demo-setup")
     state.mixes.activate(plan.plan_id, DEMO_MIX["version"], "demo-setup")
     secrets_by_role = {}
     expires_at = utc_now() + timedelta(days=DEMO_KEY_DAYS)

@@ -14,3 +14,8 @@ class AllocationError(ValueError):
         super().__init__(f"{field}: {reason}")
         self.field = field
         self.reason = reason
+
+    def __reduce__(self) -> tuple[type[AllocationError], tuple[str, str]]:
+        # Keeps the two-argument constructor working through pickling: a publication refused in
+        # the frontier process comes back as the error it is.
+        return (type(self), (self.field, self.reason))

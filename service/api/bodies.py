@@ -20,7 +20,10 @@ def parse_body(model: type[Model], raw: bytes) -> Model:
     except ValidationError as error:
         errors = []
         for e in error.errors(include_url=False, include_input=False):
-            errors.append({**e, "loc": ("body", *e["loc"])})
+            # A validator's exception in ctx becomes its text (all a problem detail shows of it),
+            # so that the error can come back from the process that parsed a large body.
+            ctx = {k: str(v) if isinstance(v, BaseException) else v for k, v in e.get("ctx", {}).items()}
+            errors.append({**e, "loc": ("body", *e["loc"])} | ({"ctx": ctx} if ctx else {}))
         raise RequestValidationError(errors) from None
 
 

@@ -22,25 +22,17 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
+import orjson
 from sqlalchemy.exc import SQLAlchemyError
 from starlette.concurrency import run_in_threadpool
 
 from service.allocation import (
-    AllocationError,
     MixState,
     MixView,
     Policy,
-    canonical_inputs,
-    canonical_text,
-    check_rates,
-    content_hash,
-    cross_checks_wanted,
-    is_finite_document,
     plan_activation,
     plan_retirement,
-    published_document,
     require_in_force,
-    solve,
     state_of,
 )
 from service.numerics import Frontier, MixInputs, SolvedMix, efficient_frontier
@@ -69,10 +61,10 @@ from .access_log import AccessLog
 from .auth import Caller, KeyRing
 from .batch_process import BatchProcess
 from .deciding import SinglesTogether
-from .errors import ConflictError, NotFound, PayloadTooLarge
+from .errors import ConflictError, NotFound
 from .metrics import Metrics
+from .publishing import PUBLICATION_PROCESS_MIN_BYTES, Publication, PublishLimits, prepare_publication
 from .rate_limits import TokenBuckets
-from .schemas import MixIn
 
 
 @dataclass(frozen=True)
@@ -130,7 +122,9 @@ class MixCatalog:
         self._settings = settings
         self._views: dict[tuple[str, str], MixView] = {}
         self._published: dict[tuple[str, str], dict[str, Any]] = {}
-        self._inputs: dict[tuple[str, str], dict[str, Any]] = {}
+        # The published inputs, kept as their canonical text until first read (a large mix's
+        # inputs are 100,000 numbers: parsed on the request that wants them, not at publish).
+        self._inputs: dict[tuple[str, str], dict[str, Any] | bytes] = {}
         # plan id -> (active version, monotonic time it was read)
         self._active: dict[str, tuple[str | None, float]] = {}
         self._solved_by_hash: dict[str, SolvedMix] = {}
@@ -148,15 +142,23 @@ class MixCatalog:
         if self._process is not None:
             self._process.shutdown(wait=False, cancel_futures=True)
 
-    def _efficient_frontier(self, inputs: MixInputs) -> tuple[Frontier, str]:
-        if inputs.n < FRONTIER_PROCESS_MIN_ASSETS or not hasattr(os, "fork"):
-            return frontier_with_text(inputs)
-        try:
+    def _child(self) -> ProcessPoolExecutor | None:
+        """The frontier process (forked on first use), or None where processes cannot fork."""
+        if not hasattr(os, "fork"):
+            return None
+        with self._lock:
             if self._process is None:
                 # Lower CPU priority: on a busy node the scheduler serves requests first.
                 self._process = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("fork"),
                                                     initializer=os.nice, initargs=(FRONTIER_PROCESS_NICE,))
-            return self._process.submit(frontier_with_text, inputs).result()
+            return self._process
+
+    def _efficient_frontier(self, inputs: MixInputs) -> tuple[Frontier, str]:
+        child = self._child() if inputs.n >= FRONTIER_PROCESS_MIN_ASSETS else None
+        if child is None:
+            return frontier_with_text(inputs)
+        try:
+            return child.submit(frontier_with_text, inputs).result()
         except (BrokenProcessPool, OSError):
             log.warning("the frontier process failed; solving in this process", exc_info=True)
             self._process = None
@@ -207,7 +209,8 @@ class MixCatalog:
             log.warning("could not store the frontier of %s", digest, exc_info=True)
 
     def _remember(
-        self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any], inputs: dict[str, Any]
+        self, plan_id: str, version: str, digest: str, solved: SolvedMix, doc: dict[str, Any],
+        inputs: dict[str, Any] | bytes,
     ) -> MixView:
         view = MixView.from_solved(version, digest, solved)
         with self._lock:
@@ -247,7 +250,10 @@ class MixCatalog:
     def inputs(self, plan_id: str, version: str) -> dict[str, Any]:
         """The published assumptions as stored (the canonical form that was hashed)."""
         self.published(plan_id, version)
-        return self._inputs[(plan_id, version)]
+        inputs = self._inputs[(plan_id, version)]
+        if isinstance(inputs, bytes):
+            inputs = self._inputs[(plan_id, version)] = orjson.loads(inputs)
+        return inputs
 
     # ---- the lifecycle -----------------------------------------------------------------------
 
@@ -319,67 +325,60 @@ class MixCatalog:
                 return state_of(version, active_version=active, retired=entry.retired_at is not None), entry
         raise NotFound(f"mix version {version!r} not found in plan {plan_id!r}")
 
-    def publish(self, plan: PlanView, request: MixIn, published_by: str | None = None) -> tuple[bool, dict[str, Any]]:
-        """(created, body). Same version and content again: (False, the first body); other content: 409."""
-        if len(request.assets) > self._settings.max_assets:
-            raise PayloadTooLarge(
-                f"{len(request.assets)} assets; this service solves at most {self._settings.max_assets}"
-            )
-        canonical = canonical_inputs(
-            assets=[a.model_dump() for a in request.assets],
-            risk_free_rate=request.risk_free_rate,
-            correlation=request.correlation,
-            covariance=request.covariance,
-            bounds=request.bounds,
-            long_only=request.long_only,
-            # The validated lists as they are (model_dump would copy 100,000 numbers once more).
-            factor_model=None if request.factor_model is None else dict(request.factor_model),
-        )
-        text = canonical_text(canonical)
-        digest = content_hash(text)
-        existing = self._load(plan.plan_id, request.version)
+    def publish(self, plan: PlanView, raw: bytes, published_by: str | None = None) -> tuple[bool, dict[str, Any]]:
+        """(created, body) for a publish request's body. Same version and content again: (False,
+        the first body); other content: 409."""
+        found = self._prepare(raw, plan.policy)
+        existing = self._load(plan.plan_id, found.version)
         if existing is not None:
-            return self._same_or_conflict(request.version, digest, existing)
-        check_rates(plan.policy, request.risk_free_rate)
-        checks = cross_checks_wanted(request.cross_check, len(request.assets), self._settings.max_cross_check_assets)
-        # The same content solved before (another plan, or an earlier version) is not solved again.
-        solved = self._solved_by_hash.get(digest)
-        if solved is None or (checks and not solved.cross_checks):
-            solved = solve(
-                canonical,
-                cross_check=checks,
-                max_condition_number=self._settings.max_condition_number,
-            )
-        doc = published_document(request.version, digest, solved)
-        if not is_finite_document(doc):
-            raise AllocationError("covariance", "the solution is not finite; the inputs are degenerate")
-        if solved.inputs.n >= FRONTIER_PROCESS_MIN_ASSETS and digest not in self._frontiers:
+            return self._same_or_conflict(found.version, found.digest, existing)
+        if found.refused is not None:
+            raise found.refused
+        assert found.solved is not None and found.doc is not None and found.stored is not None
+        solved, digest = found.solved, found.digest
+        if found.n_assets >= FRONTIER_PROCESS_MIN_ASSETS and digest not in self._frontiers:
             # A large frontier is solved in the child process: start it now, while this mix is
             # stored and answered (a small one waits for the answer: in a thread it would slow it).
             self._frontier_soon(digest, solved.inputs)
-        # The stored text is made before the write transaction: on SQLite that transaction holds the
-        # one write lock, which the log writer waits for (a 2,000-asset mix is a few MB of text).
-        stored = json_text({"published": doc, "numerics": solved.to_document()})
         try:
             with self._db.writing() as s:
                 insert_mix(
                     s,
                     plan_id=plan.plan_id,
-                    version=request.version,
+                    version=found.version,
                     content_hash=digest,
-                    inputs=text.decode(),
-                    solved=stored,
+                    inputs=found.text.decode(),
+                    solved=found.stored,
                     published_by=published_by,
                 )
         except Conflict:
             # Another replica published the same version meanwhile: answer as a repeat would.
-            raced = self._load(plan.plan_id, request.version)
+            raced = self._load(plan.plan_id, found.version)
             assert raced is not None
-            return self._same_or_conflict(request.version, digest, raced)
-        self._remember(plan.plan_id, request.version, digest, solved, doc, canonical)
+            return self._same_or_conflict(found.version, digest, raced)
+        self._remember(plan.plan_id, found.version, digest, solved, found.doc, found.text)
         keep_for_life()
         self._metrics.mixes.labels(plan.plan_id).inc()
-        return True, doc
+        return True, found.doc
+
+    def _prepare(self, raw: bytes, policy: Policy) -> Publication:
+        """The request read and solved: in the frontier process for a large body, so that this
+        process only stores and answers it."""
+        limits = PublishLimits(
+            max_assets=self._settings.max_assets,
+            max_cross_check_assets=self._settings.max_cross_check_assets,
+            max_condition_number=self._settings.max_condition_number,
+        )
+        if len(raw) >= PUBLICATION_PROCESS_MIN_BYTES:
+            child = self._child()
+            if child is not None:
+                try:
+                    # The child has no cache of its own: a large repeat is solved there again.
+                    return child.submit(prepare_publication, raw, policy, limits, {}).result()
+                except (BrokenProcessPool, OSError):
+                    log.warning("the frontier process failed; publishing in this process", exc_info=True)
+                    self._process = None
+        return prepare_publication(raw, policy, limits, self._solved_by_hash)
 
     def solve_frontier_later(self, plan_id: str, version: str) -> None:
         """Start solving a published mix's frontier unless it is known or under way; returns at

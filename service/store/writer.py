@@ -248,6 +248,17 @@ class ChainWriter:
     def running(self) -> bool:
         return self._running
 
+    @property
+    def checkpoints_in_background(self) -> bool:
+        """True on SQLite while this writer runs: WAL checkpoints are then its thread's work."""
+        return self._checkpointer is not None and self._running
+
+    def wrote_elsewhere(self) -> None:
+        """Another connection of this process committed (``Database.writing``): its WAL pages
+        are checkpointed in the background too, at the checkpointer's next idle tick."""
+        if self._checkpointer is not None and not self._streaming:
+            self._checkpointer.committed(1)
+
     def start(self) -> None:
         with self._lock:
             if self._running:

@@ -8,11 +8,12 @@ from concurrent.futures import Future, ThreadPoolExecutor, wait
 from pathlib import Path
 from typing import Any
 
+import orjson
 import pytest
 from sqlalchemy import text
 from sqlalchemy.exc import DBAPIError, IntegrityError
 
-from service.store import ChainWriter, Database, LogBatch, insert_plan, verify_chain
+from service.store import ChainWriter, Database, LogBatch, insert_mix, insert_plan, verify_chain
 from tests.store.conftest import (
     CREATED_AT,
     MIX_VERSION,
@@ -237,6 +238,36 @@ def test_sqlite_wal_is_checkpointed_in_the_background(database: Database, plan_i
     while path.stat().st_size == before and time.monotonic() < deadline:
         time.sleep(0.02)
     assert path.stat().st_size > before
+
+
+def test_sqlite_writes_beside_the_log_leave_checkpoints_to_the_background(database: Database, plan_id: str) -> None:
+    # A large write in Database.writing (a 2,000-asset mix is several MB) must not checkpoint
+    # inside its COMMIT, which holds the write lock the log writer waits for: right after it the
+    # main file is unchanged, and the background checkpointer copies the pages over soon after.
+    if database.dialect != "sqlite":
+        pytest.skip("SQLite's write-ahead log only")
+    path = Path(str(database.engine.url.database))
+    time.sleep(1.5)  # the plan's own pages checkpointed at the next idle tick
+    before = path.stat().st_size
+    big = orjson.dumps({"filler": "x" * 6_000_000}).decode()  # 1,500 pages: over SQLite's 1,000
+    with database.writing() as s:
+        assert s.execute(text("PRAGMA wal_autocheckpoint")).scalar() == 0
+        insert_mix(s, plan_id=plan_id, version="big", content_hash="0" * 64, inputs=big, solved="{}")
+    assert path.stat().st_size == before
+    deadline = time.monotonic() + 5  # the pages may be copied over in more than one step
+    while path.stat().st_size <= before + 5_000_000 and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert path.stat().st_size > before + 5_000_000
+
+
+def test_sqlite_writes_without_the_writer_keep_automatic_checkpoints(tmp_path: Path) -> None:
+    db = Database(f"sqlite:///{tmp_path / 'alone.db'}")
+    try:
+        db.upgrade()
+        with db.writing() as s:
+            assert s.execute(text("PRAGMA wal_autocheckpoint")).scalar() == 1000  # SQLite's default
+    finally:
+        db.close()
 
 
 def test_writer_out_of_reach_fails_jobs_fast_and_reconnects(tmp_path: Path) -> None:
