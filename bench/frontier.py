@@ -24,8 +24,9 @@ n x n covariance B F B' + D, "factor" as the factor model itself.
    <= 1.0 s. Floors in the same run: the same POST again (parse, hash, lookup, stored answer)
    and the same GET again (the frontier known: sampling and the JSON answer).
 4. Single allocations (wrk, 16 connections, ``--singles`` seconds) on the same server,
-   alone and while 2,000-asset factor-model frontiers are being solved back to back.
-   Target: p99 <= 15 ms.
+   alone, beside a busy loop at the frontier process's niceness (the floor: what any CPU work
+   on the other core costs them, none of it the service's), and while 2,000-asset factor-model
+   mixes are published and their frontiers solved back to back. Target: p99 <= 15 ms.
 """
 
 from __future__ import annotations
@@ -34,6 +35,7 @@ import argparse
 import json
 import os
 import shutil
+import subprocess
 import sys
 import tempfile
 import threading
@@ -55,6 +57,7 @@ sys.path.insert(0, str(ROOT / "bench"))
 
 from allocations import OPERATOR, Server, call, wrk
 
+from service.api.state import FRONTIER_PROCESS_NICE
 from service.demo import DEMO_MIX
 from service.numerics import (
     MixInputs,
@@ -243,6 +246,18 @@ def during_frontier(server: Server, keys: dict[str, str], seconds: int, workdir:
     wrk(url, 1, script)  # warm-up
     alone = wrk(url, seconds, script)
     print(f"alone: {alone['rps']:.0f} req/s, p50 {alone['p50_ms']:.1f} ms, p99 {alone['p99_ms']:.1f} ms")
+    # The floor for "while frontiers are solved": a busy loop at the frontier process's niceness,
+    # none of the service's work, using the other core as a frontier does.
+    hog = subprocess.Popen([sys.executable, "-c", f"import os, time\nos.nice({FRONTIER_PROCESS_NICE})\n"
+                            f"end = time.monotonic() + {seconds + 2}\nwhile time.monotonic() < end: sum(range(10_000))"])
+    try:
+        time.sleep(0.2)
+        floor = wrk(url, seconds, script)
+    finally:
+        hog.kill()
+        hog.wait()
+    print(f"floor, beside a niced busy loop: {floor['rps']:.0f} req/s, p50 {floor['p50_ms']:.1f} ms, "
+          f"p99 {floor['p99_ms']:.1f} ms")
     for label, pause in (("back to back", 0.0), ("one every ~1.5 s", 1.0)):
         # Seeds of their own: the same content again would find its frontier solved already.
         bodies = [orjson.dumps(mix_body(2000, 20, 500 + int(1000 * pause) + r, "factor", f"busy-{pause}-{r}"))
