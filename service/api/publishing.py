@@ -1,18 +1,22 @@
 """Reading, hashing and solving one publish request: the CPU half of publishing a mix.
 
-The same function runs in a worker thread for an ordinary body and in the frontier process for a
-large one (``MixCatalog.publish`` chooses by size). A 2,000-asset factor model is 1 MB of
-numbers and a 1,000-asset dense mix 20 MB: parsing, hashing, solving and rendering them holds
-the GIL for 35-220 ms, and every single allocation on the serving process waited that long
+Two steps: ``read_publication`` (parse, validate, canonical form, hash: enough to tell a repeat
+from a new version) and ``solve_publication`` (policy checks, solve, answer and stored text, for
+a new version only). A worker thread runs them for an ordinary body, the frontier process for a
+large one (``MixCatalog.publish`` chooses by size; ``read_here`` and ``solve_here`` are the same
+two functions there, the canonical inputs kept in that process between them). A 2,000-asset
+factor model is 1 MB of numbers and a 1,000-asset dense mix 20 MB: parsing, hashing, solving and
+rendering them holds the GIL for 35-220 ms, and every single allocation on the serving process waited that long
 (p99 39 ms while such mixes were published back to back). What comes back is only what the
-serving process needs to store and answer: the canonical text, the solved mix, the answer body
-and the stored text.
+serving process needs to look the version up, store it and answer: the version and hash, the
+canonical text, the solved mix, the answer body and the stored text.
 """
 
 from __future__ import annotations
 
+from collections import OrderedDict
 from collections.abc import Mapping
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any
 
 from service.allocation import (
@@ -50,18 +54,28 @@ class PublishLimits:
 
 
 @dataclass(frozen=True)
-class Publication:
-    """A publish request read and hashed and, unless refused, solved and rendered.
-
-    ``refused`` is an error found after the content hash: it is answered only if the version is
-    new, since publishing an existing version again answers as the first publication did (or 409
-    for other content) before any check of the mix itself."""
+class Reading:
+    """A publish request read, validated, put in canonical form and hashed: enough to tell a new
+    version from a repeat. ``canonical`` stays where it was read (not pickled back)."""
 
     version: str
     digest: str
     n_assets: int
     #: the canonical inputs, as hashed and stored
     text: bytes
+    risk_free_rate: float
+    cross_check: bool | None
+
+
+@dataclass(frozen=True)
+class Publication:
+    """A new version checked against the plan's policy and, unless refused, solved and rendered.
+
+    ``refused`` is an error found after the content hash, answered only because the version is
+    new (a repeat answers as the first publication did, or 409, before any check of the mix).
+    It does not carry the reading again: from the frontier process that would be the canonical
+    text a second time (21 MB for a 1,000-asset dense mix)."""
+
     solved: SolvedMix | None = None
     #: the answer body
     doc: dict[str, Any] | None = None
@@ -70,11 +84,8 @@ class Publication:
     refused: AllocationError | InputError | None = None
 
 
-def prepare_publication(
-    raw: bytes, policy: Policy, limits: PublishLimits, solved_before: Mapping[str, SolvedMix]
-) -> Publication:
-    """Parse and validate ``raw``, hash it canonically, check it against the plan's policy and
-    solve it (``solved_before`` holds mixes solved already, by content hash)."""
+def read_publication(raw: bytes, limits: PublishLimits) -> tuple[Reading, dict[str, Any]]:
+    """Parse and validate ``raw``, put it in canonical form and hash it."""
     request = parse_body(MixIn, raw)
     if len(request.assets) > limits.max_assets:
         raise PayloadTooLarge(f"{len(request.assets)} assets; this service solves at most {limits.max_assets}")
@@ -89,21 +100,59 @@ def prepare_publication(
         factor_model=None if request.factor_model is None else dict(request.factor_model),
     )
     text = canonical_text(canonical)
-    digest = content_hash(text)
-    read = Publication(version=request.version, digest=digest, n_assets=len(request.assets), text=text)
+    reading = Reading(request.version, content_hash(text), len(request.assets), text, request.risk_free_rate,
+                      request.cross_check)
+    return reading, canonical
+
+
+def solve_publication(
+    reading: Reading, canonical: Mapping[str, Any], policy: Policy, limits: PublishLimits,
+    solved_before: Mapping[str, SolvedMix],
+) -> Publication:
+    """Check a new version against the plan's policy and solve it (``solved_before`` holds mixes
+    solved already, by content hash); render its answer and its stored text."""
     try:
-        check_rates(policy, request.risk_free_rate)
-        checks = cross_checks_wanted(request.cross_check, len(request.assets), limits.max_cross_check_assets)
+        check_rates(policy, reading.risk_free_rate)
+        checks = cross_checks_wanted(reading.cross_check, reading.n_assets, limits.max_cross_check_assets)
         # The same content solved before (another plan, or an earlier version) is not solved again.
-        solved = solved_before.get(digest)
+        solved = solved_before.get(reading.digest)
         if solved is None or (checks and not solved.cross_checks):
             solved = solve(canonical, cross_check=checks, max_condition_number=limits.max_condition_number)
-        doc = published_document(request.version, digest, solved)
+        doc = published_document(reading.version, reading.digest, solved)
         if not is_finite_document(doc):
             raise AllocationError("covariance", "the solution is not finite; the inputs are degenerate")
     except (AllocationError, InputError) as refusal:
-        return replace(read, refused=refusal)
+        return Publication(refused=refusal)
     # Rendered here, not in the write transaction: on SQLite that transaction holds the one
     # write lock the log writer waits for (a 2,000-asset mix is a few MB of text).
     stored = json_text({"published": doc, "numerics": solved.to_document()})
-    return replace(read, solved=solved, doc=doc, stored=stored)
+    return Publication(solved, doc, stored)
+
+
+# ---- the two steps in the frontier process ------------------------------------------------------
+
+#: Canonical inputs read in this process and not yet solved, by content hash: the frontier
+#: process keeps what it read until the serving process asks for the solve (a repeat of a known
+#: version never does, hence the bound). Empty in the serving process.
+_READ_HERE: OrderedDict[str, dict[str, Any]] = OrderedDict()
+_READ_HERE_MAX = 4
+
+
+class NotReadHere(LookupError):
+    """The frontier process no longer holds the reading (restarted, or evicted)."""
+
+
+def read_here(raw: bytes, limits: PublishLimits) -> Reading:
+    reading, canonical = read_publication(raw, limits)
+    _READ_HERE[reading.digest] = canonical
+    while len(_READ_HERE) > _READ_HERE_MAX:
+        _READ_HERE.popitem(last=False)
+    return reading
+
+
+def solve_here(reading: Reading, policy: Policy, limits: PublishLimits) -> Publication:
+    canonical = _READ_HERE.pop(reading.digest, None)
+    if canonical is None:
+        raise NotReadHere(reading.digest)
+    # No cache of solved mixes here: the same content published again elsewhere is solved again.
+    return solve_publication(reading, canonical, policy, limits, {})

@@ -63,7 +63,15 @@ from .batch_process import BatchProcess
 from .deciding import SinglesTogether
 from .errors import ConflictError, NotFound
 from .metrics import Metrics
-from .publishing import PUBLICATION_PROCESS_MIN_BYTES, Publication, PublishLimits, prepare_publication
+from .publishing import (
+    PUBLICATION_PROCESS_MIN_BYTES,
+    NotReadHere,
+    PublishLimits,
+    read_here,
+    read_publication,
+    solve_here,
+    solve_publication,
+)
 from .rate_limits import TokenBuckets
 
 
@@ -328,15 +336,41 @@ class MixCatalog:
     def publish(self, plan: PlanView, raw: bytes, published_by: str | None = None) -> tuple[bool, dict[str, Any]]:
         """(created, body) for a publish request's body. Same version and content again: (False,
         the first body); other content: 409."""
-        found = self._prepare(raw, plan.policy)
-        existing = self._load(plan.plan_id, found.version)
+        limits = PublishLimits(
+            max_assets=self._settings.max_assets,
+            max_cross_check_assets=self._settings.max_cross_check_assets,
+            max_condition_number=self._settings.max_condition_number,
+        )
+        # A large body is read and solved in the frontier process: this process only looks the
+        # version up, stores it and answers (publishing.py).
+        child = self._child() if len(raw) >= PUBLICATION_PROCESS_MIN_BYTES else None
+        canonical: dict[str, Any] | None = None
+        if child is not None:
+            try:
+                reading = child.submit(read_here, raw, limits).result()
+            except (BrokenProcessPool, OSError):
+                log.warning("the frontier process failed; publishing in this process", exc_info=True)
+                self._process, child = None, None
+        if child is None:
+            reading, canonical = read_publication(raw, limits)
+        existing = self._load(plan.plan_id, reading.version)
         if existing is not None:
-            return self._same_or_conflict(found.version, found.digest, existing)
+            return self._same_or_conflict(reading.version, reading.digest, existing)
+        found = None
+        if canonical is None and child is not None:
+            try:
+                found = child.submit(solve_here, reading, plan.policy, limits).result()
+            except (BrokenProcessPool, OSError, NotReadHere):
+                log.warning("the frontier process lost the reading; solving in this process", exc_info=True)
+                canonical = read_publication(raw, limits)[1]
+        if found is None:
+            assert canonical is not None
+            found = solve_publication(reading, canonical, plan.policy, limits, self._solved_by_hash)
         if found.refused is not None:
             raise found.refused
         assert found.solved is not None and found.doc is not None and found.stored is not None
-        solved, digest = found.solved, found.digest
-        if found.n_assets >= FRONTIER_PROCESS_MIN_ASSETS and digest not in self._frontiers:
+        solved, digest = found.solved, reading.digest
+        if reading.n_assets >= FRONTIER_PROCESS_MIN_ASSETS and digest not in self._frontiers:
             # A large frontier is solved in the child process: start it now, while this mix is
             # stored and answered (a small one waits for the answer: in a thread it would slow it).
             self._frontier_soon(digest, solved.inputs)
@@ -345,40 +379,21 @@ class MixCatalog:
                 insert_mix(
                     s,
                     plan_id=plan.plan_id,
-                    version=found.version,
+                    version=reading.version,
                     content_hash=digest,
-                    inputs=found.text.decode(),
+                    inputs=reading.text.decode(),
                     solved=found.stored,
                     published_by=published_by,
                 )
         except Conflict:
             # Another replica published the same version meanwhile: answer as a repeat would.
-            raced = self._load(plan.plan_id, found.version)
+            raced = self._load(plan.plan_id, reading.version)
             assert raced is not None
-            return self._same_or_conflict(found.version, digest, raced)
-        self._remember(plan.plan_id, found.version, digest, solved, found.doc, found.text)
+            return self._same_or_conflict(reading.version, digest, raced)
+        self._remember(plan.plan_id, reading.version, digest, solved, found.doc, reading.text)
         keep_for_life()
         self._metrics.mixes.labels(plan.plan_id).inc()
         return True, found.doc
-
-    def _prepare(self, raw: bytes, policy: Policy) -> Publication:
-        """The request read and solved: in the frontier process for a large body, so that this
-        process only stores and answers it."""
-        limits = PublishLimits(
-            max_assets=self._settings.max_assets,
-            max_cross_check_assets=self._settings.max_cross_check_assets,
-            max_condition_number=self._settings.max_condition_number,
-        )
-        if len(raw) >= PUBLICATION_PROCESS_MIN_BYTES:
-            child = self._child()
-            if child is not None:
-                try:
-                    # The child has no cache of its own: a large repeat is solved there again.
-                    return child.submit(prepare_publication, raw, policy, limits, {}).result()
-                except (BrokenProcessPool, OSError):
-                    log.warning("the frontier process failed; publishing in this process", exc_info=True)
-                    self._process = None
-        return prepare_publication(raw, policy, limits, self._solved_by_hash)
 
     def solve_frontier_later(self, plan_id: str, version: str) -> None:
         """Start solving a published mix's frontier unless it is known or under way; returns at

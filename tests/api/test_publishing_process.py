@@ -16,6 +16,7 @@ from typing import Any
 import pytest
 
 from service.api import state as state_module
+from service.api.publishing import NotReadHere, PublishLimits, Reading
 from service.api.state import MixCatalog
 
 from .conftest import World
@@ -124,3 +125,34 @@ async def test_a_bad_body_from_the_frontier_process_names_its_field(world: World
     problem = assert_problem(r, 422, "body")
     assert "invalid JSON" in problem["errors"][0]["reason"]
     assert in_child
+
+
+def forgetful_solve(reading: Reading, policy: object, limits: PublishLimits) -> None:
+    """What the frontier process answers when it no longer holds a reading (restarted meanwhile)."""
+    raise NotReadHere(reading.digest)
+
+
+async def test_a_reading_the_frontier_process_lost_is_solved_in_this_process(
+    world: World, new_plan_id: str, in_child: list[int], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    keys = await world.plan(new_plan_id)
+    monkeypatch.setattr(state_module, "solve_here", forgetful_solve)
+    status, answer = await post(world, new_plan_id, keys, factor_body("fm-lost"))
+    assert status == 201, answer
+    assert in_child
+    monkeypatch.setattr(state_module, "PUBLICATION_PROCESS_MIN_BYTES", 1 << 40)
+    thread_plan = new_plan_id + "-t"
+    thread_keys = await world.plan(thread_plan)
+    assert await post(world, thread_plan, thread_keys, factor_body("fm-lost")) == (201, answer)
+
+
+async def test_a_repeat_in_the_frontier_process_is_not_solved_again(
+    world: World, new_plan_id: str, in_child: list[int], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The version is looked up between reading and solving: a repeat never asks for the solve.
+    keys = await world.plan(new_plan_id)
+    first = await post(world, new_plan_id, keys, factor_body("fm-again"))
+    assert first[0] == 201
+    monkeypatch.setattr(state_module, "solve_here", forgetful_solve)
+    monkeypatch.setattr(state_module, "solve_publication", None)  # no solve in this process either
+    assert await post(world, new_plan_id, keys, factor_body("fm-again")) == (200, first[1])
