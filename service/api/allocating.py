@@ -30,9 +30,9 @@ async def allocate_one(
     state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None
 ) -> Response:
     caller.require(plan_id, "portal")
-    plan = state.plan(plan_id)
+    plan = await state.plan_soon(plan_id)
     request = read_single(parse_json(raw))
-    view = state.mixes.view_in_force(plan_id, request.mix_version)
+    view = await state.view_in_force_soon(plan_id, request.mix_version)
     decided = await state.singles.decide(plan_id, plan.currency, plan.policy, view, request.members[0])
     owned = await idempotency.claim(state, caller, plan_id, idempotency_key, raw)
     if isinstance(owned, Response):
@@ -52,13 +52,13 @@ async def allocate_batch(
     state: AppState, caller: Caller, plan_id: str, raw: bytes, idempotency_key: str | None
 ) -> Response:
     caller.require(plan_id, "portal")
-    plan = state.plan(plan_id)
+    plan = await state.plan_soon(plan_id)
     # Blocking steps of the conversation with the batch process run on worker threads; the
     # process does the Python work, so this one goes on serving other requests meanwhile.
     talk = await run_in_threadpool(state.batches.conversation)
     try:
         version = await run_in_threadpool(talk.read, raw, state.settings.batch_limit)
-        view = state.mixes.view_in_force(plan_id, version)
+        view = await state.view_in_force_soon(plan_id, version)
         created_at = utc_now_text()
         on = Setting(plan_id, plan.currency, plan.policy, view.terms(), created_at)
         size = await run_in_threadpool(talk.decide, on)

@@ -90,7 +90,7 @@ async def estimate(
     repair: Annotated[bool, Query(description="text/csv only: take the nearest correlation matrix if needed")] = False,
 ) -> Response:
     caller.require(plan_id, "committee")
-    state.plan(plan_id)
+    await state.plan_soon(plan_id)
     media = request.headers.get("content-type", "").split(";")[0].strip().lower()
     raw = await request.body()
     lines: list[str] | None = None

@@ -76,7 +76,7 @@ def list_mixes(plan_id: str, caller: CallerDep, state: StateDep) -> Response:
 )
 async def publish_mix(plan_id: str, request: Request, caller: CallerDep, state: StateDep) -> Response:
     caller.require(plan_id, "committee")
-    plan = state.plan(plan_id)
+    plan = await state.plan_soon(plan_id)
     # Parsing (a 2,000-asset factor model is 1 MB of numbers) and solving are CPU work: off the
     # event loop, and for a large body in the frontier process (publishing.py). pydantic's own
     # JSON parser validates the body in one pass, where FastAPI's body parameter (json.loads,
@@ -168,7 +168,7 @@ async def read_frontier(
 ) -> Response:
     caller.require(plan_id, *READERS)
     media = choose(request.headers.get("accept"), FRONTIER_MEDIA)
-    state.plan(plan_id)
+    await state.plan_soon(plan_id)
     if points > state.settings.max_frontier_points:
         raise Unprocessable(
             f"points: at most {state.settings.max_frontier_points}",
@@ -210,7 +210,7 @@ def _member(state: AppState, plan_id: str, version: str, allocation_id: str) -> 
 )
 async def review_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -> Response:
     caller.require(plan_id, "committee")
-    plan = state.plan(plan_id)
+    plan = await state.plan_soon(plan_id)
     doc = state.mixes.published(plan_id, version)
     mix_state, entry = state.mixes.state(plan_id, version)
     view, frontier = await run_in_threadpool(state.mixes.frontier, plan_id, version)

@@ -279,6 +279,16 @@ class MixCatalog:
         self._active[plan_id] = (record.active_version, read_at)
         return record.active_version
 
+    def fresh(self, plan_id: str, version: str) -> bool:
+        """True if ``view_in_force`` would answer from memory (the mix known, the active version
+        read within its time to live): false means it reads the database first."""
+        known = self._active.get(plan_id)
+        return (
+            (plan_id, version) in self._views
+            and known is not None
+            and time.monotonic() - known[1] <= self._settings.active_version_ttl_seconds
+        )
+
     def view_in_force(self, plan_id: str, version: str) -> MixView:
         """The mix an allocation may use: ``version`` if it is the active one, else 409."""
         require_in_force(version, self.active_version(plan_id, max_age=self._settings.active_version_ttl_seconds))
@@ -474,6 +484,20 @@ class AppState:
                 raise NotFound(f"plan {plan_id!r} not found")
             view = self._plans[plan_id] = PlanView.from_record(record)
         return view
+
+    # What allocations need first is read in a worker thread whenever it comes from the database
+    # (the plan once, the active version once its time to live is over, a mix once): a database
+    # that hangs must not stall the event loop (and /livez with it), nor a large mix's stored
+    # document be parsed on it. From memory, the answer comes on the loop.
+
+    async def plan_soon(self, plan_id: str) -> PlanView:
+        view = self._plans.get(plan_id)
+        return view if view is not None else await run_in_threadpool(self.plan, plan_id)
+
+    async def view_in_force_soon(self, plan_id: str, version: str) -> MixView:
+        if self.mixes.fresh(plan_id, version):
+            return self.mixes.view_in_force(plan_id, version)
+        return await run_in_threadpool(self.mixes.view_in_force, plan_id, version)
 
     def active_version(self, plan_id: str) -> str | None:
         """Read live (pages and reads; allocations use MixCatalog.view_in_force)."""
