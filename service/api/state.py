@@ -10,6 +10,7 @@ Keys can be revoked or expire, so what a replica knows of one is re-read after a
 
 from __future__ import annotations
 
+import asyncio
 import gc
 import logging
 import multiprocessing
@@ -279,15 +280,18 @@ class MixCatalog:
         self._active[plan_id] = (record.active_version, read_at)
         return record.active_version
 
-    def fresh(self, plan_id: str, version: str) -> bool:
-        """True if ``view_in_force`` would answer from memory (the mix known, the active version
-        read within its time to live): false means it reads the database first."""
+    def age(self, plan_id: str, version: str) -> float | None:
+        """Seconds since the active version was read, if ``version``'s mix is known too (None:
+        ``view_in_force`` would read the database first whatever ``max_age``)."""
         known = self._active.get(plan_id)
-        return (
-            (plan_id, version) in self._views
-            and known is not None
-            and time.monotonic() - known[1] <= self._settings.active_version_ttl_seconds
-        )
+        if known is None or (plan_id, version) not in self._views:
+            return None
+        return time.monotonic() - known[1]
+
+    def view_in_force_read(self, plan_id: str, version: str) -> MixView:
+        """``view_in_force`` with the active version read now (and the mix loaded if need be)."""
+        require_in_force(version, self.active_version(plan_id))
+        return self.view(plan_id, version)
 
     def view_in_force(self, plan_id: str, version: str) -> MixView:
         """The mix an allocation may use: ``version`` if it is the active one, else 409."""
@@ -458,6 +462,7 @@ class AppState:
         self.singles = SinglesTogether()
         self.batches = BatchProcess()
         self._plans: dict[str, PlanView] = {}
+        self._refreshing: dict[tuple[str, str], asyncio.Task[MixView]] = {}
         # Set once the process begins to stop (SIGTERM, or the lifespan's shutdown): /readyz then
         # answers 503, so a balancer still holding a connection to it sends no new work.
         self.shutting_down = False
@@ -495,9 +500,30 @@ class AppState:
         return view if view is not None else await run_in_threadpool(self.plan, plan_id)
 
     async def view_in_force_soon(self, plan_id: str, version: str) -> MixView:
-        if self.mixes.fresh(plan_id, version):
+        """``MixCatalog.view_in_force`` from memory, the active version re-read in the background
+        once half its time to live is over; a request waits for a read only when what is known is
+        older than that time (or unknown), and then for the one read under way, whoever started
+        it (16 requests arriving together each read it otherwise)."""
+        ttl = self.settings.active_version_ttl_seconds
+        age = self.mixes.age(plan_id, version)
+        if age is not None and age <= ttl:
+            if age > ttl / 2:
+                self._refresh(plan_id, version)
             return self.mixes.view_in_force(plan_id, version)
-        return await run_in_threadpool(self.mixes.view_in_force, plan_id, version)
+        return await asyncio.shield(self._refresh(plan_id, version))
+
+    def _refresh(self, plan_id: str, version: str) -> asyncio.Task[MixView]:
+        """The read of ``plan_id``'s active version (and ``version``'s mix) under way, or a new one."""
+        task = self._refreshing.get((plan_id, version))
+        if task is None:
+            task = asyncio.ensure_future(
+                run_in_threadpool(self.mixes.view_in_force_read, plan_id, version)
+            )
+            self._refreshing[(plan_id, version)] = task
+            task.add_done_callback(lambda done: self._refreshing.pop((plan_id, version), None))
+            # A background refresh nobody awaits: its outcome is the next request's to see.
+            task.add_done_callback(lambda done: done.cancelled() or done.exception())
+        return task
 
     def active_version(self, plan_id: str) -> str | None:
         """Read live (pages and reads; allocations use MixCatalog.view_in_force)."""

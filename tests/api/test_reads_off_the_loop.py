@@ -63,10 +63,12 @@ async def test_a_hanging_active_version_read_does_not_stall_the_event_loop(
 
     monkeypatch.setattr(state_module, "get_plan", held)
 
-    async def allocate() -> None:
-        r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=body, headers=keys["portal"])
+    async def allocate(member_id: str = "m-held", last: bool = True) -> None:
+        r = await world.client.post(f"/v1/plans/{new_plan_id}/allocations", json=body | {"member_id": member_id},
+                                    headers=keys["portal"])
         assert r.status_code == 201, r.text
-        events.append("allocated")
+        if last:
+            events.append("allocated")
 
     async with anyio.create_task_group() as tasks:
         tasks.start_soon(allocate)
@@ -76,6 +78,10 @@ async def test_a_hanging_active_version_read_does_not_stall_the_event_loop(
         live = await world.client.get("/livez")
         assert live.status_code == 200
         events.append("livez answered")
+        # Requests that come while the read is under way wait for that one read.
+        for i in range(5):
+            tasks.start_soon(allocate, f"m-also-{i}", False)
+        await anyio.sleep(0.2)
         release.set()
         events.append("read released")
-    assert events == ["read entered", "livez answered", "read released", "allocated"]
+    assert events == ["read entered", "livez answered", "read released", "allocated"]  # one read for six
