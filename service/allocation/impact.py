@@ -90,9 +90,13 @@ class Impact:
         }
 
 
+#: The keys of the impact summary's bound counts: "none" for members no bound limited.
+LIMIT_COUNT_KEYS = ("none", *(n for n in LIMIT_NAMES if n))
+
+
 def _counts(bounds: Sequence[str | None]) -> dict[str, int]:
     names = [name or "none" for name in bounds]
-    return {name: names.count(name) for name in ["none", *(n for n in LIMIT_NAMES if n)]}
+    return {name: names.count(name) for name in LIMIT_COUNT_KEYS}
 
 
 def impact(records: Sequence[Mapping[str, Any]], candidate: Setting) -> Impact:

@@ -24,10 +24,12 @@ from service.allocation import (
     MEMBER_ID_PATTERN,
     RESERVED_VERSION_NAMES,
     AllocationError,
+    MixState,
     check_decimal_rates,
     check_version_name,
 )
 from service.allocation.human_capital import MAX_INCOME_GROWTH, MIN_INCOME_GROWTH
+from service.allocation.impact import LIMIT_COUNT_KEYS
 from service.allocation.mixes import MAX_DECIMAL_RETURN, MAX_DECIMAL_RISK_FREE_RATE, MAX_DECIMAL_VOLATILITY
 from service.allocation.money import AMOUNT_PATTERN
 from service.allocation.policy import (
@@ -276,7 +278,8 @@ Timestamp = Annotated[str, WithJsonSchema(
 Currency = Annotated[str, StringConstraints(pattern=r"^[A-Z]{3}$")]
 SCORE_PATTERN = r"^(0|-?[1-9][0-9]*)$"  # an integer written plainly (allocation.policy's rule)
 Role = Literal["operator", "committee", "portal"]
-MixStateName = Literal["published", "active", "retired"]
+# The lifecycle's states as the lifecycle rule names them, documented inline as an enum.
+MixStateName = Annotated[str, WithJsonSchema({"type": "string", "enum": [s.value for s in MixState], "title": "State"})]
 
 
 class Documented(BaseModel):
@@ -787,8 +790,11 @@ class ImpactOut(Documented):
     to_version: str
     members: int = Field(description="members compared")
     risky_fraction_change: ChangeSummaryOut
-    limited_by: dict[Literal["before", "after"], dict[Literal["none", "min_risky_fraction", "max_risky_fraction"], int]] = (
-        Field(description="how many members each bound limited, before and after"))
+    limited_by: Annotated[dict[str, dict[str, int]], WithJsonSchema({
+        "type": "object", "propertyNames": {"enum": ["before", "after"]},
+        "additionalProperties": {"type": "object", "propertyNames": {"enum": list(LIMIT_COUNT_KEYS)},
+                                 "additionalProperties": {"type": "integer"}},
+    })] = Field(description="how many members each bound limited, before and after")
     largest_moves: list[MoveOut]
     refused_under_candidate: int
 
