@@ -32,7 +32,7 @@ from .schemas import (
     MixOut,
     MixVersionOut,
 )
-from .state import AppState
+from .state import AppState, PlanView
 
 router = APIRouter(prefix="/v1/plans/{plan_id}/mixes", tags=["mixes"])
 
@@ -211,23 +211,31 @@ def _member(state: AppState, plan_id: str, version: str, allocation_id: str) -> 
 async def review_mix(plan_id: str, version: str, caller: CallerDep, state: StateDep) -> Response:
     caller.require(plan_id, "committee")
     plan = await state.plan_soon(plan_id)
+    # Off the event loop as a whole: live reads of the lifecycle, possibly a wait for the frontier,
+    # the chart, the impact preview and a large mix's inputs parsed from their stored text.
+    page = await run_in_threadpool(_review_page, state, plan, version)
+    return HTMLResponse(page, headers={"Content-Security-Policy": CONTENT_SECURITY_POLICY})
+
+
+def _review_page(state: AppState, plan: PlanView, version: str) -> str:
+    plan_id = plan.plan_id
     doc = state.mixes.published(plan_id, version)
     mix_state, entry = state.mixes.state(plan_id, version)
-    view, frontier = await run_in_threadpool(state.mixes.frontier, plan_id, version)
+    view, frontier = state.mixes.frontier(plan_id, version)
     chart = frontier_chart(view, frontier, f"Risky mix {version}: efficient frontier")
-    svg = await run_in_threadpool(frontier_svg, chart)
+    svg = frontier_svg(chart)
     # The impact against the active version, for a candidate (a published version) only: the
     # active version against itself moves nobody, and a retired one is never put in force again.
     active = state.active_version(plan_id)
     impact = None
     if active is not None and mix_state is MixState.PUBLISHED:
-        impact = await run_in_threadpool(impact_document, state, plan_id, version)
+        impact = impact_document(state, plan_id, version)
     not_computed = (
         "no version is in force yet" if active is None
         else "this is the version in force" if mix_state is MixState.ACTIVE
         else "a retired version is never in force again" if mix_state is MixState.RETIRED else None
     )
-    page = review_html(
+    return review_html(
         plan={"plan_id": plan.plan_id, "name": plan.name},
         mix=doc,
         inputs=state.mixes.inputs(plan_id, version),
@@ -239,4 +247,3 @@ async def review_mix(plan_id: str, version: str, caller: CallerDep, state: State
         impact=impact,
         impact_note=not_computed,
     )
-    return HTMLResponse(page, headers={"Content-Security-Policy": CONTENT_SECURITY_POLICY})
