@@ -52,6 +52,12 @@ log = logging.getLogger("mixline.api")
 # How long a client should wait before retrying while the database cannot be reached.
 DATABASE_RETRY_AFTER_SECONDS = 2
 
+# The Idempotency-Key header's form: an RFC 8941 sf-string ("..."), as the draft asks, or a bare
+# token. Kept here, beside its words, because idempotency.py (which reads keys with it and
+# declares it in the OpenAPI) imports this module.
+IDEMPOTENCY_KEY_PATTERN = r'^(?:"([ !#-\[\]-~]{1,255})"|([!#-~]{1,255}))$'
+IDEMPOTENCY_KEY_WORDS = "1 to 255 printable ASCII characters in double quotes, or without quotes, spaces and double quotes"
+
 # What the identifier patterns of schemas.py allow, in words: a message never shows a regex.
 # tests/api/test_errors.py checks that every pattern in the OpenAPI document is described here.
 PATTERN_WORDS = {
@@ -67,8 +73,7 @@ PATTERN_WORDS = {
     r"^(0|-?[1-9][0-9]*)$": "an integer written plainly, such as 3 or -1",
     r"^[!-~]{1,128}$": "1 to 128 visible ASCII characters",
     r"^[0-9]+$": "a whole number of seconds",
-    r'^(?:"([ !#-\[\]-~]{1,255})"|([!#-~]{1,255}))$':
-        "1 to 255 printable ASCII characters in double quotes, or without quotes, spaces and double quotes",
+    IDEMPOTENCY_KEY_PATTERN: IDEMPOTENCY_KEY_WORDS,
 }
 
 

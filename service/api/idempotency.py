@@ -28,22 +28,21 @@ from starlette.responses import Response
 from service.store import IdempotencyCompletion, KeyRelease, KeyReservation
 
 from .auth import Caller
-from .errors import ConflictError, ProblemError, Unprocessable
+from .errors import IDEMPOTENCY_KEY_PATTERN, IDEMPOTENCY_KEY_WORDS, ConflictError, ProblemError, Unprocessable
 from .state import AppState
 
 # Marks an answer that is a replay of the first one (our name; the capability is the draft's).
 REPLAY_HEADER = "Mixline-Replay"
 
-# An RFC 8941 sf-string, as the draft asks ("..."); a bare token is accepted too. The one pattern:
-# the OpenAPI declares it, and parse_key reads with it.
-KEY_PATTERN = r'^(?:"([ !#-\[\]-~]{1,255})"|([!#-~]{1,255}))$'
+# The one pattern (errors.py): the OpenAPI declares it, and parse_key reads with it.
+KEY_PATTERN = IDEMPOTENCY_KEY_PATTERN
 _VALUE = re.compile(KEY_PATTERN)
 HEADER_PARAMETER = {
     "name": "Idempotency-Key",
     "in": "header",
     "required": False,
     "description": 'Optional. A retry with the same key and body returns the first answer; e.g. "8e03-41a2" '
-    "(1 to 255 printable ASCII characters in double quotes, or without quotes, spaces and double quotes)",
+    f"({IDEMPOTENCY_KEY_WORDS})",
     "schema": {"type": "string", "pattern": KEY_PATTERN},
 }
 
