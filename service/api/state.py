@@ -374,8 +374,10 @@ class MixCatalog:
         if canonical is None and child is not None:
             try:
                 found = child.submit(solve_here, reading, plan.policy, limits).result()
-            except (BrokenProcessPool, OSError, NotReadHere):
+            except (BrokenProcessPool, OSError, NotReadHere) as lost:
                 log.warning("the frontier process lost the reading; solving in this process", exc_info=True)
+                if not isinstance(lost, NotReadHere):
+                    self._process = None  # forked again on next use
                 canonical = read_publication(raw, limits)[1]
         if found is None:
             assert canonical is not None

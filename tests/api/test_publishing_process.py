@@ -10,6 +10,7 @@ contract's rules for a repeated version (API.md, "Mixes": same content 200, othe
 from __future__ import annotations
 
 import copy
+import os
 from collections.abc import Iterator
 from typing import Any
 
@@ -156,3 +157,25 @@ async def test_a_repeat_in_the_frontier_process_is_not_solved_again(
     monkeypatch.setattr(state_module, "solve_here", forgetful_solve)
     monkeypatch.setattr(state_module, "solve_publication", None)  # no solve in this process either
     assert await post(world, new_plan_id, keys, factor_body("fm-again")) == (200, first[1])
+
+
+def dying_solve(reading: Reading, policy: object, limits: PublishLimits) -> None:
+    """The frontier process dies in the middle of a solve (killed, out of memory)."""
+    os._exit(1)
+
+
+async def test_a_frontier_process_that_dies_mid_solve_is_replaced(
+    world: World, new_plan_id: str, in_child: list[int], monkeypatch: pytest.MonkeyPatch,
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    keys = await world.plan(new_plan_id)
+    with monkeypatch.context() as dying:
+        dying.setattr(state_module, "solve_here", dying_solve)
+        status, answer = await post(world, new_plan_id, keys, factor_body("fm-died"))
+    assert status == 201, answer  # solved in this process instead
+    caplog.clear()
+    status, again = await post(world, new_plan_id, keys, factor_body("fm-after"))
+    assert status == 201, again
+    assert again["tangency"] == answer["tangency"]
+    # Through a new frontier process: nothing fell back to this one.
+    assert not [r for r in caplog.records if "frontier process" in r.getMessage()], caplog.records
