@@ -6,10 +6,10 @@ a new version only). A worker thread runs them for an ordinary body, the frontie
 large one (``MixCatalog.publish`` chooses by size; ``read_here`` and ``solve_here`` are the same
 two functions there, the canonical inputs kept in that process between them). A 2,000-asset
 factor model is 1 MB of numbers and a 1,000-asset dense mix 20 MB: parsing, hashing, solving and
-rendering them holds the GIL for 35-220 ms, and every single allocation on the serving process waited that long
-(p99 39 ms while such mixes were published back to back). What comes back is only what the
-serving process needs to look the version up, store it and answer: the version and hash, the
-canonical text, the solved mix, the answer body and the stored text.
+rendering them holds the GIL for 35-220 ms, and every single allocation on the serving process
+waited that long (p99 39 ms while such mixes were published back to back). What comes back is
+only what the serving process needs to look the version up, store it and answer: the version
+and hash, the canonical text, the solved mix, the answer body and the stored text.
 """
 
 from __future__ import annotations

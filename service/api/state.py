@@ -67,7 +67,9 @@ from .metrics import Metrics
 from .publishing import (
     PUBLICATION_PROCESS_MIN_BYTES,
     NotReadHere,
+    Publication,
     PublishLimits,
+    Reading,
     read_here,
     read_publication,
     solve_here,
@@ -169,8 +171,7 @@ class MixCatalog:
         try:
             return child.submit(frontier_with_text, inputs).result()
         except (BrokenProcessPool, OSError):
-            log.warning("the frontier process failed; solving in this process", exc_info=True)
-            self._process = None
+            self._child_failed("solving the frontier in this process")
             return frontier_with_text(inputs)
 
     def frontier(self, plan_id: str, version: str) -> tuple[MixView, Frontier]:
@@ -288,14 +289,11 @@ class MixCatalog:
             return None
         return time.monotonic() - known[1]
 
-    def view_in_force_read(self, plan_id: str, version: str) -> MixView:
-        """``view_in_force`` with the active version read now (and the mix loaded if need be)."""
-        require_in_force(version, self.active_version(plan_id))
-        return self.view(plan_id, version)
-
-    def view_in_force(self, plan_id: str, version: str) -> MixView:
-        """The mix an allocation may use: ``version`` if it is the active one, else 409."""
-        require_in_force(version, self.active_version(plan_id, max_age=self._settings.active_version_ttl_seconds))
+    def view_in_force(self, plan_id: str, version: str, *, live: bool = False) -> MixView:
+        """The mix an allocation may use: ``version`` if it is the active one, else 409; the active
+        version as read within its time to live, or (``live``) read now."""
+        max_age = None if live else self._settings.active_version_ttl_seconds
+        require_in_force(version, self.active_version(plan_id, max_age=max_age))
         return self.view(plan_id, version)
 
     def lifecycle(self, plan_id: str) -> tuple[str | None, list[MixLifecycle]]:
@@ -355,33 +353,11 @@ class MixCatalog:
             max_cross_check_assets=self._settings.max_cross_check_assets,
             max_condition_number=self._settings.max_condition_number,
         )
-        # A large body is read and solved in the frontier process: this process only looks the
-        # version up, stores it and answers (publishing.py).
-        child = self._child() if len(raw) >= PUBLICATION_PROCESS_MIN_BYTES else None
-        canonical: dict[str, Any] | None = None
-        if child is not None:
-            try:
-                reading = child.submit(read_here, raw, limits).result()
-            except (BrokenProcessPool, OSError):
-                log.warning("the frontier process failed; publishing in this process", exc_info=True)
-                self._process, child = None, None
-        if child is None:
-            reading, canonical = read_publication(raw, limits)
+        reading, held = self._read(raw, limits)
         existing = self._load(plan.plan_id, reading.version)
         if existing is not None:
             return self._same_or_conflict(reading.version, reading.digest, existing)
-        found = None
-        if canonical is None and child is not None:
-            try:
-                found = child.submit(solve_here, reading, plan.policy, limits).result()
-            except (BrokenProcessPool, OSError, NotReadHere) as lost:
-                log.warning("the frontier process lost the reading; solving in this process", exc_info=True)
-                if not isinstance(lost, NotReadHere):
-                    self._process = None  # forked again on next use
-                canonical = read_publication(raw, limits)[1]
-        if found is None:
-            assert canonical is not None
-            found = solve_publication(reading, canonical, plan.policy, limits, self._solved_by_hash)
+        found = self._solve(raw, reading, held, plan.policy, limits)
         if found.refused is not None:
             raise found.refused
         assert found.solved is not None and found.doc is not None and found.stored is not None
@@ -410,6 +386,38 @@ class MixCatalog:
         keep_for_life()
         self._metrics.mixes.labels(plan.plan_id).inc()
         return True, found.doc
+
+    # A large body is read and solved in the frontier process: this process only looks the
+    # version up between the two steps, stores the mix and answers (publishing.py).
+
+    def _read(self, raw: bytes, limits: PublishLimits) -> tuple[Reading, dict[str, Any] | ProcessPoolExecutor]:
+        """The request read, and its canonical inputs if read here, or the process that holds them."""
+        child = self._child() if len(raw) >= PUBLICATION_PROCESS_MIN_BYTES else None
+        if child is not None:
+            try:
+                return child.submit(read_here, raw, limits).result(), child
+            except (BrokenProcessPool, OSError):
+                self._child_failed("publishing in this process")
+        return read_publication(raw, limits)
+
+    def _solve(
+        self, raw: bytes, reading: Reading, held: dict[str, Any] | ProcessPoolExecutor, policy: Policy,
+        limits: PublishLimits,
+    ) -> Publication:
+        """A new version solved where it was read (here again, if the frontier process lost it)."""
+        if isinstance(held, ProcessPoolExecutor):
+            try:
+                return held.submit(solve_here, reading, policy, limits).result()
+            except NotReadHere:
+                log.warning("the frontier process no longer holds the reading; solving in this process")
+            except (BrokenProcessPool, OSError):
+                self._child_failed("solving in this process")
+            held = read_publication(raw, limits)[1]
+        return solve_publication(reading, held, policy, limits, self._solved_by_hash)
+
+    def _child_failed(self, instead: str) -> None:
+        log.warning("the frontier process failed; %s", instead, exc_info=True)
+        self._process = None  # forked again on next use
 
     def solve_frontier_later(self, plan_id: str, version: str) -> None:
         """Start solving a published mix's frontier unless it is known or under way; returns at
@@ -516,15 +524,19 @@ class AppState:
 
     def _refresh(self, plan_id: str, version: str) -> asyncio.Task[MixView]:
         """The read of ``plan_id``'s active version (and ``version``'s mix) under way, or a new one."""
-        task = self._refreshing.get((plan_id, version))
+        key = (plan_id, version)
+        task = self._refreshing.get(key)
         if task is None:
-            task = asyncio.ensure_future(
-                run_in_threadpool(self.mixes.view_in_force_read, plan_id, version)
-            )
-            self._refreshing[(plan_id, version)] = task
-            task.add_done_callback(lambda done: self._refreshing.pop((plan_id, version), None))
-            # A background refresh nobody awaits: its outcome is the next request's to see.
-            task.add_done_callback(lambda done: done.cancelled() or done.exception())
+            task = asyncio.ensure_future(run_in_threadpool(self.mixes.view_in_force, plan_id, version, live=True))
+            self._refreshing[key] = task
+
+            def finished(done: asyncio.Task[MixView]) -> None:
+                self._refreshing.pop(key, None)
+                # A background refresh nobody awaits: its outcome is the next request's to see.
+                if not done.cancelled():
+                    done.exception()
+
+            task.add_done_callback(finished)
         return task
 
     def active_version(self, plan_id: str) -> str | None:
